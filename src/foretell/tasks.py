@@ -1,0 +1,495 @@
+"""Task files: the stimulus source of an experiment as a context tree."""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from itertools import product
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import connected_components
+from scipy.sparse.linalg import spsolve
+
+from .errors import Problem, TaskError
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+PROB_TOL = 1e-9
+MAX_CHAIN_STATES = 2_000_000  # pasts of maximal depth the entropy-rate chain may hold
+
+
+@dataclass(frozen=True)
+class RecurrentClass:
+    """One closed class of the chain on pasts of maximal depth and its entropy rate.
+
+    ``pasts`` are the states (index tuples, oldest first), ``stationary`` their
+    stationary probabilities within the class.
+    """
+
+    pasts: tuple[tuple[int, ...], ...]
+    stationary: np.ndarray
+    entropy_rate_bits: float
+
+
+@dataclass(frozen=True)
+class EntropyRate:
+    """Entropy rate of a task's source, in bits per symbol.
+
+    ``bits`` is the rate when the chain on pasts has a single recurrent class
+    (the rate then does not depend on the start); otherwise it is ``nan`` and
+    ``classes`` lists each recurrent class with its own rate.
+    """
+
+    bits: float
+    classes: tuple[RecurrentClass, ...]
+
+    @property
+    def irreducible(self) -> bool:
+        """True when the source has one recurrent class."""
+        return len(self.classes) == 1
+
+
+@dataclass(frozen=True, eq=False)
+class Task:
+    """A stimulus source: a complete context tree over an ordered alphabet.
+
+    ``contexts[i]`` is a context as symbol indices, oldest first (``()`` is
+    the root of a memoryless source) and ``next_probs[i]`` its next-symbol
+    distribution. Use :func:`load_task` or :meth:`from_dict` to build one:
+    both validate.
+    """
+
+    name: str
+    symbols: tuple[str, ...]
+    contexts: tuple[tuple[int, ...], ...]
+    next_probs: np.ndarray
+    description: str = ""
+    block_length: int | None = None
+    path: str | None = None
+    _lookup: dict[tuple[int, ...], int] = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_lookup", {c: i for i, c in enumerate(self.contexts)})
+        probs = np.array(self.next_probs, dtype=float)
+        probs.setflags(write=False)
+        object.__setattr__(self, "next_probs", probs)
+
+    # -- construction -------------------------------------------------------------
+    @classmethod
+    def from_dict(cls, data: dict[str, Any], path: str | None = None) -> "Task":
+        """Return a validated task from a parsed task-file mapping (see tasks/ for examples)."""
+        return _parse_task(data, path)
+
+    # -- alphabet -----------------------------------------------------------------
+    @property
+    def n_symbols(self) -> int:
+        """Return the alphabet size m."""
+        return len(self.symbols)
+
+    @property
+    def max_depth(self) -> int:
+        """Return the length of the longest context."""
+        return max(len(c) for c in self.contexts)
+
+    def index_of(self, symbol: str) -> int:
+        """Return the index of a symbol label; raise TaskError if it is not in the alphabet."""
+        try:
+            return self.symbols.index(symbol)
+        except ValueError:
+            raise TaskError(f"unknown symbol {symbol!r}; the task's symbols are "
+                            f"{', '.join(self.symbols)}", path=self.path) from None
+
+    def encode(self, labels: Iterable[str]) -> np.ndarray:
+        """Return the symbol indices of a sequence of labels."""
+        return np.array([self.index_of(s) for s in labels], dtype=np.int64)
+
+    def decode(self, indices: Iterable[int]) -> list[str]:
+        """Return the labels of a sequence of symbol indices."""
+        return [self.symbols[int(i)] for i in indices]
+
+    def context_label(self, context: Sequence[int]) -> str:
+        """Return a context as labels joined by '-', oldest first; the root is '*'."""
+        return "-".join(self.decode(context)) if len(context) else "*"
+
+    # -- the source ---------------------------------------------------------------
+    def context_of(self, past: Sequence[int] | Sequence[str]) -> int:
+        """Return the index of the context that is a suffix of ``past`` (oldest first)."""
+        idx = [self.index_of(s) if isinstance(s, str) else int(s) for s in past]
+        for d in range(min(len(idx), self.max_depth) + 1):
+            key = tuple(idx[len(idx) - d:])
+            if key in self._lookup:
+                return self._lookup[key]
+        raise TaskError(f"the past {self.decode(idx)} is too short to determine a context "
+                        f"of task {self.name!r} (longest context {self.max_depth})", path=self.path)
+
+    def context_indices(self, x: np.ndarray) -> np.ndarray:
+        """Return, for each trial t, the context index used to predict x[t] from x[:t].
+
+        Entry t is -1 where x[:t] is too short to determine a context.
+        """
+        x = np.asarray(x, dtype=np.int64)
+        n, d = len(x), self.max_depth
+        lagged = np.full((n, d), -1, dtype=np.int64)  # column j: the symbol j+1 trials back
+        for j in range(d):
+            lagged[j + 1:, j] = x[: n - j - 1]
+        return self._contexts_of_lagged(lagged)
+
+    def _contexts_of_lagged(self, lagged: np.ndarray) -> np.ndarray:
+        """Return the context index of each row of lags (column j = symbol j+1 back, -1 = none).
+
+        Walks the tree one depth level at a time, vectorised over rows: the
+        suffix of length d is coded as sum_j (s_j + 1)(m+1)^j, unique over all
+        depths, and matched against the contexts' codes.
+        """
+        n = lagged.shape[0]
+        m = self.n_symbols
+        out = np.full(n, -1, dtype=np.int64)
+        code = np.zeros(n, dtype=np.int64)
+        undecided = np.ones(n, dtype=bool)
+        by_depth: dict[int, list[tuple[int, int]]] = {}
+        for i, c in enumerate(self.contexts):
+            by_depth.setdefault(len(c), []).append((_suffix_code(c, m), i))
+        for d in range(self.max_depth + 1):
+            if d > 0:
+                lag = lagged[:, d - 1]
+                undecided &= lag >= 0
+                code = code + (lag + 1) * (m + 1) ** (d - 1)
+            if d not in by_depth:
+                continue
+            keys, vals = np.array(sorted(by_depth[d])).T
+            pos = np.clip(np.searchsorted(keys, code), 0, len(keys) - 1)
+            hit = undecided & (keys[pos] == code)
+            out[hit] = vals[pos[hit]]
+            undecided &= ~hit
+        return out
+
+    def next_proba(self, x: np.ndarray) -> np.ndarray:
+        """Return the true probabilities of x[t] given x[:t], shape (len(x), m); 1/m rows where undetermined."""
+        ctx = self.context_indices(x)
+        out = np.full((len(ctx), self.n_symbols), 1.0 / self.n_symbols)
+        known = ctx >= 0
+        out[known] = self.next_probs[ctx[known]]
+        return out
+
+    def sample(self, n: int, seed: int | np.random.Generator | None = None,
+               initial: Sequence[int] | None = None) -> np.ndarray:
+        """Return a stimulus sequence of ``n`` symbol indices drawn from the source.
+
+        The first ``max_depth`` symbols come from ``initial`` when given, else
+        from the stationary distribution over pasts of maximal depth (chosen
+        among recurrent classes in proportion to nothing: the class is drawn
+        uniformly when there are several).
+        """
+        rng = np.random.default_rng(seed)
+        d = self.max_depth
+        if initial is None:
+            initial = self._draw_initial(rng)
+        past = [int(s) for s in initial][-d:] if d else []
+        if len(past) < d:
+            raise TaskError(f"initial past must hold {d} symbols, got {len(past)}", path=self.path)
+        x = np.empty(n + d, dtype=np.int64)
+        x[:d] = past
+        table = self._state_contexts()  # context of every full past, coded oldest-first base m
+        cum = np.cumsum(self.next_probs, axis=1)
+        u = rng.random(n)
+        m, top = self.n_symbols, self.n_symbols ** max(d - 1, 0)
+        state = int(sum(v * m ** (d - 1 - j) for j, v in enumerate(past)))
+        for t in range(d, n + d):  # sequential by nature: each draw sets the next context
+            row = cum[table[state]]
+            x[t] = min(int(np.searchsorted(row, u[t - d], side="right")), m - 1)
+            if d:
+                state = (state % top) * m + int(x[t])
+        return x[d:]
+
+    def entropy_rate(self) -> EntropyRate:
+        """Return the exact entropy rate in bits per symbol.
+
+        H = sum_s pi(s) H(P(. | s)) over pasts s of maximal depth D, with pi the
+        stationary distribution of the chain s -> s[1:] + a (Cover & Thomas,
+        2006, Theorem 4.2.4, applied to the D-th order chain). Recurrent classes
+        are the strongly connected components with no edge leaving them.
+        """
+        states, trans = self._past_chain()
+        n_comp, labels = connected_components(trans, directed=True, connection="strong")
+        coo = trans.tocoo()
+        leaving = np.zeros(n_comp, dtype=bool)
+        cross = labels[coo.row] != labels[coo.col]
+        leaving[labels[coo.row[cross]]] = True
+        h_state = _entropy_bits(self.next_probs)[self._state_contexts()]
+        classes = []
+        for comp in np.flatnonzero(~leaving):
+            members = np.flatnonzero(labels == comp)
+            pi = _stationary(trans[members][:, members])
+            classes.append(RecurrentClass(
+                pasts=tuple(tuple(int(v) for v in states[i]) for i in members),
+                stationary=pi,
+                entropy_rate_bits=float(pi @ h_state[members]),
+            ))
+        bits = classes[0].entropy_rate_bits if len(classes) == 1 else math.nan
+        return EntropyRate(bits=bits, classes=tuple(classes))
+
+    def to_frame(self) -> "pd.DataFrame":
+        """Return the tree as a tidy table: one row per context, columns context, depth, p_<symbol>."""
+        import pandas as pd
+
+        table = pd.DataFrame({"context": [self.context_label(c) for c in self.contexts],
+                              "depth": [len(c) for c in self.contexts]})
+        for j, s in enumerate(self.symbols):
+            table[f"p_{s}"] = self.next_probs[:, j]
+        return table
+
+    def describe(self) -> str:
+        """Return a short plain-text account of the task: alphabet, contexts, entropy rate."""
+        lines = [f"task {self.name!r}: {self.n_symbols} symbols ({', '.join(self.symbols)}), "
+                 f"{len(self.contexts)} contexts, longest {self.max_depth}"
+                 + (f", {self.block_length} trials per block" if self.block_length else "")]
+        if self.description:
+            lines.append(self.description)
+        lines += ["", self.to_frame().to_string(index=False), ""]
+        try:
+            rate = self.entropy_rate()
+        except TaskError as err:
+            lines.append(f"entropy rate not computed: {err}")
+            return "\n".join(lines)
+        if rate.irreducible:
+            lines.append(f"entropy rate: {rate.bits:.4f} bits per symbol "
+                         f"(maximum {math.log2(self.n_symbols):.4f})")
+        else:
+            lines.append(f"the source has {len(rate.classes)} recurrent classes; the entropy "
+                         "rate depends on where it starts:")
+            for c in rate.classes:
+                pasts = ", ".join(self.context_label(p) for p in c.pasts[:6])
+                more = " ..." if len(c.pasts) > 6 else ""
+                lines.append(f"  pasts {pasts}{more}: {c.entropy_rate_bits:.4f} bits per symbol")
+        return "\n".join(lines)
+
+    # -- helpers ------------------------------------------------------------------
+    def _pasts(self) -> np.ndarray:
+        """Return every past of maximal depth D as rows (oldest first), in base-m code order."""
+        m, d = self.n_symbols, self.max_depth
+        n_states = m**d
+        if n_states > MAX_CHAIN_STATES:
+            raise TaskError(f"the chain on pasts of depth {d} over {m} symbols has {n_states} "
+                            f"states, more than {MAX_CHAIN_STATES}", path=self.path)
+        codes = np.arange(n_states)
+        return np.stack([(codes // m ** (d - 1 - j)) % m for j in range(d)], axis=1) \
+            if d else np.zeros((1, 0), dtype=np.int64)
+
+    def _state_contexts(self) -> np.ndarray:
+        """Return the context index of every past of maximal depth, in base-m code order."""
+        return self._contexts_of_lagged(self._pasts()[:, ::-1])
+
+    def _past_chain(self) -> tuple[np.ndarray, sparse.csr_matrix]:
+        """Return the pasts of depth D and the sparse transition matrix s -> s[1:] + a."""
+        m = self.n_symbols
+        states = self._pasts()
+        n_states = len(states)
+        codes = np.arange(n_states)
+        probs = self.next_probs[self._state_contexts()]
+        rows = np.repeat(codes, m)
+        cols = ((codes * m) % n_states)[:, None] + np.arange(m)[None, :] if self.max_depth \
+            else np.zeros((1, m), dtype=np.int64)
+        vals = probs.ravel()
+        keep = vals > 0
+        trans = sparse.csr_matrix((vals[keep], (rows[keep], cols.ravel()[keep])),
+                                  shape=(n_states, n_states))
+        return states, trans
+
+    def _draw_initial(self, rng: np.random.Generator) -> list[int]:
+        if self.max_depth == 0:
+            return []
+        classes = self.entropy_rate().classes
+        cls = classes[int(rng.integers(len(classes)))]
+        i = int(rng.choice(len(cls.pasts), p=cls.stationary))
+        return list(cls.pasts[i])
+
+
+def load_task(path: str | Path) -> Task:
+    """Return the validated task described by a TOML task file."""
+    p = Path(path)
+    try:
+        with p.open("rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise TaskError("task file not found", path=str(p)) from None
+    except tomllib.TOMLDecodeError as exc:
+        line = _toml_error_line(str(exc))
+        raise TaskError(f"not valid TOML: {exc}", path=str(p), line=line) from None
+    return _parse_task(data, str(p))
+
+
+# -- validation ---------------------------------------------------------------------
+def _parse_task(data: dict[str, Any], path: str | None) -> Task:
+    problems: list[Problem] = []
+
+    def bad(msg: str, key: str | None = None) -> None:
+        problems.append(Problem(msg, path=path, column=key))
+
+    name = data.get("name")
+    if not isinstance(name, str) or not name.strip():
+        bad("'name' must be a non-empty string", "name")
+        name = Path(path).stem if path else "task"
+    description = data.get("description", "")
+    if not isinstance(description, str):
+        bad("'description' must be a string", "description")
+        description = ""
+    block_length = data.get("block_length")
+    if block_length is not None and (not isinstance(block_length, int) or isinstance(block_length, bool)
+                                     or block_length < 1):
+        bad(f"'block_length' must be a positive whole number, got {block_length!r}", "block_length")
+        block_length = None
+    symbols = data.get("symbols")
+    if not isinstance(symbols, list) or len(symbols) < 2:
+        bad("'symbols' must be a list of at least two labels", "symbols")
+        raise TaskError(problems)
+    for s in symbols:
+        if not isinstance(s, str) or not s or "-" in s or any(ch.isspace() for ch in s) or s == "*":
+            bad(f"symbol label {s!r} must be a non-empty string without '-', '*' or whitespace",
+                "symbols")
+    if len(set(symbols)) != len(symbols):
+        dupes = sorted({s for s in symbols if symbols.count(s) > 1})
+        bad(f"symbol labels must be unique; repeated: {', '.join(map(str, dupes))}", "symbols")
+    raw_contexts = data.get("contexts")
+    if not isinstance(raw_contexts, list) or not raw_contexts:
+        bad("at least one [[contexts]] table is required", "contexts")
+    if problems:
+        raise TaskError(problems)
+
+    index = {s: i for i, s in enumerate(symbols)}
+    contexts: list[tuple[int, ...]] = []
+    rows: list[list[float]] = []
+    for k, ctx in enumerate(raw_contexts, start=1):
+        key = f"contexts[{k}]"
+        if not isinstance(ctx, dict):
+            bad("must be a table with 'past' and 'next'", key)
+            continue
+        past, nxt = ctx.get("past"), ctx.get("next")
+        label = f"{key} (past = {past!r})"
+        if not isinstance(past, list):
+            bad(f"{label}: 'past' must be a list of symbols (oldest first)", f"{key}.past")
+            continue
+        unknown = [s for s in past if s not in index]
+        if unknown:
+            bad(f"{label}: unknown symbol(s) {', '.join(map(repr, unknown))} in 'past'", f"{key}.past")
+            continue
+        if not isinstance(nxt, dict):
+            bad(f"{label}: 'next' must be a table of symbol = probability", f"{key}.next")
+            continue
+        unknown = [s for s in nxt if s not in index]
+        missing = [s for s in symbols if s not in nxt]
+        if unknown:
+            bad(f"{label}: unknown symbol(s) {', '.join(map(repr, unknown))} in 'next'", f"{key}.next")
+        if missing:
+            bad(f"{label}: 'next' gives no probability for {', '.join(map(repr, missing))}",
+                f"{key}.next")
+        if unknown or missing:
+            continue
+        vals = [nxt[s] for s in symbols]
+        if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in vals):
+            bad(f"{label}: probabilities must be numbers", f"{key}.next")
+            continue
+        if any(v < 0 for v in vals):
+            bad(f"{label}: negative probability", f"{key}.next")
+            continue
+        if abs(sum(vals) - 1.0) > PROB_TOL:
+            bad(f"{label}: probabilities sum to {sum(vals):.12g}, not 1 (tolerance {PROB_TOL})",
+                f"{key}.next")
+            continue
+        contexts.append(tuple(index[s] for s in past))
+        rows.append([float(v) for v in vals])
+    if problems:
+        raise TaskError(problems)
+    problems.extend(_tree_problems(contexts, symbols, path))
+    if problems:
+        raise TaskError(problems)
+    return Task(name=name, symbols=tuple(symbols), contexts=tuple(contexts),
+                next_probs=np.array(rows), description=description,
+                block_length=block_length, path=path)
+
+
+def _tree_problems(contexts: list[tuple[int, ...]], symbols: list[str],
+                   path: str | None) -> list[Problem]:
+    """Return the problems that keep ``contexts`` from being a complete context tree.
+
+    Complete: every past of maximal depth has exactly one context as a suffix.
+    """
+    def show(c: Sequence[int]) -> str:
+        return "[" + ", ".join(symbols[i] for i in c) + "]"
+
+    problems: list[Problem] = []
+    seen: dict[tuple[int, ...], int] = {}
+    for k, c in enumerate(contexts, start=1):
+        if c in seen:
+            problems.append(Problem(f"context {show(c)} is given twice (contexts[{seen[c]}] and "
+                                    f"contexts[{k}])", path=path, column=f"contexts[{k}]"))
+        seen.setdefault(c, k)
+    if problems:
+        return problems
+    for c in contexts:  # a context that is a suffix of another: both match the longer past
+        for d in range(len(c)):
+            if c[len(c) - d:] in seen:
+                problems.append(Problem(
+                    f"contexts {show(c[len(c) - d:])} and {show(c)} both match a past ending in "
+                    f"{show(c)}: one context may not be a suffix of another", path=path,
+                    column=f"contexts[{seen[c]}]"))
+    if problems:
+        return problems
+    depth = max(len(c) for c in contexts)
+    m = len(symbols)
+    if m**depth > MAX_CHAIN_STATES:
+        return problems
+    for past in product(range(m), repeat=depth):
+        if not any(past[depth - d:] in seen for d in range(depth + 1)):
+            problems.append(Problem(f"no context matches a past ending in {show(past)}: the "
+                                    "contexts are not a complete context tree", path=path,
+                                    column="contexts"))
+            if len(problems) >= 5:
+                break
+    return problems
+
+
+# -- small numerical helpers ---------------------------------------------------------
+def _suffix_code(context: Sequence[int], m: int) -> int:
+    """Return a unique integer for a suffix: sum over lag j (1 = newest) of (s+1)(m+1)^(j-1)."""
+    return sum((s + 1) * (m + 1) ** j for j, s in enumerate(reversed(context)))
+
+
+def _entropy_bits(probs: np.ndarray) -> np.ndarray:
+    """Return the Shannon entropy in bits of each row (0 log 0 = 0)."""
+    p = np.asarray(probs, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = np.where(p > 0, -p * np.log2(p), 0.0)
+    return terms.sum(axis=-1)
+
+
+def _stationary(trans: sparse.csr_matrix) -> np.ndarray:
+    """Return the stationary distribution of an irreducible stochastic matrix.
+
+    Solves pi (P - I) = 0 with one balance equation replaced by sum(pi) = 1
+    (a standard way to make the system non-singular; common practice).
+    """
+    n = trans.shape[0]
+    if n == 1:
+        return np.ones(1)
+    a = (trans.T - sparse.identity(n, format="csr")).tolil()
+    a[n - 1, :] = np.ones(n)
+    b = np.zeros(n)
+    b[-1] = 1.0
+    pi = spsolve(a.tocsc(), b)
+    pi = np.clip(np.atleast_1d(pi), 0.0, None)
+    return pi / pi.sum()
+
+
+def _toml_error_line(message: str) -> int | None:
+    marker = "(at line "
+    if marker in message:
+        tail = message.split(marker, 1)[1]
+        digits = tail.split(",", 1)[0]
+        if digits.isdigit():
+            return int(digits)
+    return None

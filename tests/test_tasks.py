@@ -1,0 +1,220 @@
+"""Task files: validation, the Task object, sampling and the entropy rate."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from foretell.errors import TaskError
+from foretell.tasks import Task, load_task
+
+TASKS = Path(__file__).resolve().parents[1] / "tasks"
+
+
+def h2(p: float) -> float:
+    """Binary entropy in bits."""
+    return 0.0 if p in (0.0, 1.0) else -(p * math.log2(p) + (1 - p) * math.log2(1 - p))
+
+
+def two_state(p: float, q: float) -> Task:
+    """Binary first-order chain: P(switch | a) = p, P(switch | b) = q."""
+    return Task.from_dict({
+        "name": "two-state", "symbols": ["a", "b"],
+        "contexts": [{"past": ["a"], "next": {"a": 1 - p, "b": p}},
+                     {"past": ["b"], "next": {"a": q, "b": 1 - q}}],
+    })
+
+
+def write(tmp_path: Path, text: str) -> Path:
+    path = tmp_path / "task.toml"
+    path.write_text(text)
+    return path
+
+
+@pytest.mark.parametrize("name", ["lantern-relay", "tide-gauge", "compass-fair"])
+def test_shipped_tasks_load(name: str) -> None:
+    task = load_task(TASKS / f"{name}.toml")
+    assert task.name == name
+    assert np.allclose(task.next_probs.sum(axis=1), 1.0)
+
+
+def test_shipped_tasks_cover_required_shapes() -> None:
+    tasks = [load_task(p) for p in sorted(TASKS.glob("*.toml"))]
+    assert {2, 3} <= {t.n_symbols for t in tasks}
+    assert max(t.max_depth for t in tasks) >= 3
+
+
+@pytest.mark.parametrize("p,q", [(0.2, 0.6), (0.1, 0.1), (0.5, 0.5), (0.9, 0.3)])
+def test_entropy_rate_two_state_markov_chain(p: float, q: float) -> None:
+    # Cover & Thomas, Elements of Information Theory, 2nd ed. (2006), Example 4.2.1:
+    # H = (q h(p) + p h(q)) / (p + q) bits (formula from memory, not looked up).
+    expected = (q * h2(p) + p * h2(q)) / (p + q)
+    assert two_state(p, q).entropy_rate().bits == pytest.approx(expected, abs=1e-12)
+
+
+def test_entropy_rate_iid_is_shannon_entropy() -> None:
+    # Memoryless source: the entropy rate is the entropy of one draw (Shannon, 1948; common practice).
+    task = load_task(TASKS / "compass-fair.toml")
+    p = np.array([0.4, 0.3, 0.2, 0.1])
+    assert task.entropy_rate().bits == pytest.approx(float(-(p * np.log2(p)).sum()), abs=1e-12)
+
+
+def test_entropy_rate_reports_each_recurrent_class() -> None:
+    # a and b are absorbing: two recurrent classes, each deterministic (rate 0);
+    # c is transient. No single rate exists, so bits is nan.
+    task = Task.from_dict({
+        "name": "absorbing", "symbols": ["a", "b", "c"],
+        "contexts": [{"past": ["a"], "next": {"a": 1.0, "b": 0.0, "c": 0.0}},
+                     {"past": ["b"], "next": {"a": 0.0, "b": 1.0, "c": 0.0}},
+                     {"past": ["c"], "next": {"a": 0.5, "b": 0.25, "c": 0.25}}]})
+    rate = task.entropy_rate()
+    assert not rate.irreducible and math.isnan(rate.bits)
+    assert sorted(c.pasts for c in rate.classes) == [((0,),), ((1,),)]
+    assert all(c.entropy_rate_bits == 0.0 for c in rate.classes)
+
+
+def test_entropy_rate_depth_two_matches_direct_stationary() -> None:
+    # Independent computation: power iteration of the dense chain on pasts.
+    task = load_task(TASKS / "tide-gauge.toml")
+    m, d = task.n_symbols, task.max_depth
+    pasts = [(i, j) for i in range(m) for j in range(m)]
+    P = np.zeros((4, 4))
+    for k, s in enumerate(pasts):
+        probs = task.next_probs[task.context_of(list(s))]
+        for a in range(m):
+            P[k, pasts.index((s[1], a))] = probs[a]
+    pi = np.full(4, 0.25)
+    for _ in range(5000):
+        pi = pi @ P
+    h = [-(task.next_probs[task.context_of(list(s))] * np.log2(task.next_probs[task.context_of(list(s))])).sum()
+         for s in pasts]
+    assert task.entropy_rate().bits == pytest.approx(float(pi @ h), abs=1e-9)
+    assert d == 2
+
+
+def test_symbol_mapping_and_context_lookup() -> None:
+    task = load_task(TASKS / "lantern-relay.toml")
+    assert task.symbols == ("red", "green", "blue")
+    assert task.index_of("blue") == 2
+    assert task.decode(task.encode(["green", "red"])) == ["green", "red"]
+    assert task.contexts[task.context_of(["blue", "red", "green", "green"])] == (0, 1, 1)
+    assert task.contexts[task.context_of(["green", "red"])] == (0,)
+    with pytest.raises(TaskError, match="too short"):
+        task.context_of(["green", "green"])
+    x = task.encode(["red", "green", "green", "blue", "red"])
+    # trial 0 has no past; trial 1 follows red; trial 2 follows red-green;
+    # trial 3 follows red-green-green; trial 4 follows blue.
+    ci = task.context_indices(x)
+    assert ci[0] == -1
+    assert [task.contexts[i] for i in ci[1:]] == [(0,), (0, 1), (0, 1, 1), (2,)]
+    probs = task.next_proba(x)
+    assert np.allclose(probs[0], 1 / 3) and np.allclose(probs[1], task.next_probs[ci[1]])
+    assert task.context_label((0, 1)) == "red-green" and task.context_label(()) == "*"
+
+
+def test_sample_is_seeded() -> None:
+    task = load_task(TASKS / "lantern-relay.toml")
+    assert np.array_equal(task.sample(300, seed=7), task.sample(300, seed=7))
+    assert not np.array_equal(task.sample(300, seed=7), task.sample(300, seed=8))
+
+
+# ---- validation: one test per bad input -------------------------------------------------
+GOOD_HEAD = 'name = "t"\nsymbols = ["a", "b"]\n'
+
+
+@pytest.mark.parametrize("body,fragment", [
+    ('[[contexts]]\npast = ["z"]\nnext = {a = 0.5, b = 0.5}\n', "unknown symbol(s) 'z' in 'past'"),
+    ('[[contexts]]\npast = []\nnext = {a = 0.5, c = 0.5}\n', "unknown symbol(s) 'c' in 'next'"),
+    ('[[contexts]]\npast = []\nnext = {a = 1.2, b = -0.2}\n', "negative probability"),
+    ('[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.6}\n', "sum to 1.1"),
+    ('[[contexts]]\npast = []\nnext = {a = 1.0}\n', "no probability for 'b'"),
+    ('[[contexts]]\npast = ["a"]\nnext = {a = 0.5, b = 0.5}\n', "no context matches a past ending in [b]"),
+    ('[[contexts]]\npast = ["a"]\nnext = {a = 0.5, b = 0.5}\n'
+     '[[contexts]]\npast = ["b"]\nnext = {a = 0.5, b = 0.5}\n'
+     '[[contexts]]\npast = ["a", "b"]\nnext = {a = 0.5, b = 0.5}\n', "both match a past ending in [a, b]"),
+    ('[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n'
+     '[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n', "given twice"),
+])
+def test_bad_contexts_are_named(tmp_path: Path, body: str, fragment: str) -> None:
+    path = write(tmp_path, GOOD_HEAD + body)
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    assert fragment in str(err.value)
+    assert str(path) in str(err.value)
+
+
+def test_probability_tolerance_is_1e_9(tmp_path: Path) -> None:
+    ok = write(tmp_path, GOOD_HEAD + '[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5000000001}\n')
+    assert load_task(ok).n_symbols == 2
+    bad = write(tmp_path, GOOD_HEAD + '[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.500000002}\n')
+    with pytest.raises(TaskError, match="not 1"):
+        load_task(bad)
+
+
+@pytest.mark.parametrize("symbols,fragment", [
+    ('["a", "a"]', "unique"), ('["a", "b-c"]', "without '-'"), ('["a", "b c"]', "whitespace"),
+    ('["a", ""]', "non-empty"), ('["a"]', "at least two"),
+])
+def test_bad_symbol_labels(tmp_path: Path, symbols: str, fragment: str) -> None:
+    path = write(tmp_path, f'name = "t"\nsymbols = {symbols}\n[[contexts]]\npast = []\nnext = {{a = 1.0}}\n')
+    with pytest.raises(TaskError, match=fragment):
+        load_task(path)
+
+
+def test_invalid_toml_names_the_line(tmp_path: Path) -> None:
+    path = write(tmp_path, 'name = "t"\nsymbols = = ["a", "b"]\n')
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    assert err.value.problems[0].line == 2
+    assert f"{path}:" in str(err.value)
+
+
+def test_missing_file() -> None:
+    with pytest.raises(TaskError, match="not found"):
+        load_task("no/such/task.toml")
+
+
+# ---- property: samples follow allowed transitions and approach the specified frequencies ----
+@st.composite
+def random_tasks(draw: st.DrawFn) -> Task:
+    """A random complete context tree: each node splits with some probability, up to depth 3."""
+    m = draw(st.integers(2, 4))
+    symbols = [f"s{i}" for i in range(m)]
+
+    def grow(ctx: tuple[int, ...]) -> list[tuple[int, ...]]:
+        if len(ctx) < 3 and draw(st.booleans()):
+            return [c for a in range(m) for c in grow((a,) + ctx)]
+        return [ctx]
+
+    contexts = grow(())
+    rows = []
+    for c in contexts:
+        w = np.array(draw(st.lists(st.integers(0, 5), min_size=m, max_size=m)), dtype=float)
+        if w.sum() == 0:
+            w[0] = 1.0
+        rows.append(w / w.sum())
+    return Task.from_dict({"name": "random", "symbols": symbols, "contexts": [
+        {"past": [symbols[i] for i in c], "next": dict(zip(symbols, map(float, r)))}
+        for c, r in zip(contexts, rows)]})
+
+
+@settings(max_examples=30, deadline=None)
+@given(task=random_tasks(), seed=st.integers(0, 2**32 - 1))
+def test_samples_follow_the_tree(task: Task, seed: int) -> None:
+    x = task.sample(4000, seed=seed)
+    ctx = task.context_indices(x)
+    t = np.flatnonzero(ctx >= 0)
+    # never a transition of probability zero
+    assert np.all(task.next_probs[ctx[t], x[t]] > 0)
+    # empirical next-symbol frequencies approach the specified ones (a 6-sigma band)
+    for i in np.unique(ctx[t]):
+        sel = t[ctx[t] == i]
+        if len(sel) < 200:
+            continue
+        freq = np.bincount(x[sel], minlength=task.n_symbols) / len(sel)
+        p = task.next_probs[i]
+        assert np.all(np.abs(freq - p) <= 6 * np.sqrt(p * (1 - p) / len(sel)) + 1e-12)
