@@ -1,0 +1,445 @@
+"""Tests of response-log reading, validation, RT screening and the summary."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.stats import median_abs_deviation, norm
+
+from foretell.errors import LogError, UsageError
+from foretell.logs import (RT_FLAGS, RTScreen, load_log, log_summary, log_warnings,
+                           screen_rt, validate_log)
+from foretell.tasks import Task
+
+TASK = Task.from_dict({"name": "t", "symbols": ["a", "b", "c"],
+                       "contexts": [{"past": [], "next": {"a": 0.2, "b": 0.3, "c": 0.5}}]})
+
+HEADER = "participant,session,block,trial,stimulus,response,rt"
+GOOD = [HEADER,
+        "p02,1,1,1,a,b,0.52",
+        "p01,1,1,1,b,b,0.61",
+        "p01,1,1,2,c,,",
+        "p01,1,2,3,a,c,0.45",
+        "p02,1,1,2,c,c,0.38"]
+
+
+def write(tmp_path, lines, name="log.csv"):
+    path = tmp_path / name
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def problems_of(path, **kwargs):
+    with pytest.raises(LogError) as err:
+        load_log(path, TASK, **kwargs)
+    return err.value.problems
+
+
+# --- a valid log -----------------------------------------------------------
+
+def test_valid_log_gives_canonical_sorted_frame(tmp_path):
+    path = write(tmp_path, GOOD)
+    frame = load_log(path, TASK)
+    assert list(frame.columns) == ["participant", "session", "block", "trial", "stimulus",
+                                   "response", "rt", "stimulus_idx", "response_idx", "missed",
+                                   "rt_ok", "rt_flag"]
+    assert list(frame["participant"]) == ["p01", "p01", "p01", "p02", "p02"]
+    assert list(frame["trial"]) == [1, 2, 3, 1, 2]
+    assert list(frame["stimulus_idx"]) == [1, 2, 0, 0, 2]
+    assert list(frame["response_idx"]) == [1, -1, 2, 1, 2]
+    assert list(frame["missed"]) == [False, True, False, False, False]
+    assert list(frame["rt_flag"]) == ["", "missed", "", "", ""]
+    assert frame["response"].isna().tolist() == [False, True, False, False, False]
+    assert frame["trial"].dtype == np.int64 and frame["rt"].dtype == np.float64
+    assert frame["missed"].dtype == bool and frame["rt_ok"].dtype == bool
+    assert pd.api.types.is_string_dtype(frame["participant"])
+    assert frame.attrs["source"] == str(path)
+    assert frame.attrs["rt_screen"] == RTScreen()
+    assert log_warnings(frame) == []
+
+
+def test_participant_ids_stay_text_and_session_defaults_to_1(tmp_path):
+    lines = ["participant,block,trial,stimulus,response,rt",
+             "007,1,1,a,a,0.5", "007,1,2,b,a,0.5"]
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert list(frame["participant"]) == ["007", "007"]
+    assert list(frame["session"]) == [1, 1]
+
+
+def test_tsv_and_detected_delimiter(tmp_path):
+    tsv = write(tmp_path, [line.replace(",", "\t") for line in GOOD], "log.tsv")
+    txt = write(tmp_path, [line.replace(",", ";") for line in GOOD], "log.txt")
+    reference = load_log(write(tmp_path, GOOD), TASK)
+    for path in (tsv, txt):
+        pd.testing.assert_frame_equal(load_log(path, TASK), reference)
+
+
+def test_quoted_fields_and_blank_lines_keep_file_line_numbers(tmp_path):
+    # RFC 4180 (Shafranovich, 2005): a quoted field may hold the delimiter and a line break.
+    lines = [HEADER + ",note",
+             'p01,1,1,1,a,a,0.5,"calm, then',
+             'tired"',
+             "",
+             "p01,1,1,2,b,d,0.5,ok"]
+    problems = problems_of(write(tmp_path, lines))
+    assert [(p.line, p.column) for p in problems] == [(5, "response")]
+
+
+def test_round_trip_through_csv(tmp_path):
+    frame = load_log(write(tmp_path, GOOD), TASK)
+    path = tmp_path / "again.csv"
+    frame[["participant", "session", "block", "trial", "stimulus", "response", "rt"]].to_csv(
+        path, index=False)
+    again = load_log(path, TASK)
+    again.attrs, frame.attrs = {}, {}
+    pd.testing.assert_frame_equal(again, frame)
+
+
+def test_validate_log_in_memory_with_typed_columns():
+    df = pd.DataFrame({"participant": [3, 3, 4], "block": [1, 1, 1], "trial": [1, 2, 1],
+                       "stimulus": ["a", "b", "c"], "response": ["a", None, "x"],
+                       "rt": [0.4, np.nan, 0.5]})
+    with pytest.raises(LogError) as err:
+        validate_log(df, TASK, source="sim")
+    (problem,) = err.value.problems
+    assert (problem.path, problem.line, problem.column) == ("sim", 4, "response")
+    df.loc[2, "response"] = "c"
+    frame = validate_log(df, TASK, source="sim")
+    assert list(frame["participant"]) == ["3", "3", "4"]
+    assert list(frame["response_idx"]) == [0, -1, 2]
+
+
+def test_column_map_and_milliseconds(tmp_path):
+    lines = ["subj,blk,trial,stimulus,guess,RT_ms",
+             "p01,1,1,a,b,520", "p01,1,2,b,b,1450"]
+    path = write(tmp_path, lines)
+    frame = load_log(path, TASK, columns={"participant": "subj", "block": "blk",
+                                          "response": "guess", "rt": "RT_ms"}, rt_unit="ms")
+    np.testing.assert_allclose(frame["rt"], [0.52, 1.45])  # 1 s = 1000 ms (SI)
+    problems = problems_of(path, columns={"participant": "subj", "block": "blk",
+                                          "response": "answer"})
+    assert [(p.line, p.column) for p in problems] == [(1, "answer")]
+    assert "canonical 'response'" in problems[0].message
+
+
+def test_seconds_that_look_like_milliseconds_are_warned(tmp_path):
+    lines = ["participant,block,trial,stimulus,response,rt", "p01,1,1,a,b,520"]
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert any("rt_unit='ms'" in w for w in log_warnings(frame))
+
+
+def test_bad_options_are_usage_errors(tmp_path):
+    path = write(tmp_path, GOOD)
+    with pytest.raises(UsageError):
+        load_log(path, TASK, rt_unit="min")
+    with pytest.raises(UsageError):
+        load_log(path, TASK, columns={"respons": "guess"})
+    with pytest.raises(UsageError):
+        load_log(path, TASK, columns={"response": "x", "stimulus": "x"})
+
+
+# --- one test per bad input -------------------------------------------------
+
+def test_missing_required_column(tmp_path):
+    lines = [",".join(f for i, f in enumerate(line.split(",")) if i != 4) for line in GOOD]
+    assert lines[0] == "participant,session,block,trial,response,rt"
+    problems = problems_of(write(tmp_path, lines))
+    assert [(p.line, p.column) for p in problems] == [(1, "stimulus")]
+    assert "missing required column" in problems[0].message
+
+
+def test_missing_column_hints_at_a_near_name(tmp_path):
+    lines = [GOOD[0].replace("response", "Response")] + GOOD[1:]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert problem.column == "response" and "'Response'" in problem.message
+
+
+def test_unknown_symbols_list_first_lines(tmp_path):
+    lines = [HEADER] + [f"p01,1,1,{t},d,a,0.5" for t in range(1, 9)]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (2, "stimulus")
+    assert "unknown symbol 'd'" in problem.message
+    assert "lines 2, 3, 4, 5, 6 and 3 more" in problem.message
+
+
+def test_non_numeric_rt(tmp_path):
+    lines = GOOD[:2] + ["p01,1,1,1,b,b,fast", "p01,1,1,2,b,b,inf", "p01,1,1,3,b,b,NA"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "rt")
+    assert "must be a number, got 'fast' (lines 3, 4)" in problem.message
+
+
+def test_decimal_comma_gets_a_hint(tmp_path):
+    lines = [line.replace(",", ";") for line in GOOD[:2]] + ["p01;1;1;1;b;b;0,61"]
+    (problem,) = problems_of(write(tmp_path, lines, "log.txt"))
+    assert problem.line == 3 and "decimal point" in problem.message
+
+
+def test_negative_rt(tmp_path):
+    lines = GOOD[:2] + ["p01,1,1,1,b,b,-0.2"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "rt") and "negative" in problem.message
+
+
+def test_duplicated_trial(tmp_path):
+    lines = GOOD + ["p01,1,2,3,b,b,0.5"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (7, "trial") and "repeats" in problem.message
+
+
+def test_non_increasing_trial_in_file_order(tmp_path):
+    lines = [HEADER, "p01,1,1,2,a,a,0.5", "p01,1,1,1,b,b,0.5"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "trial") and "lower" in problem.message
+
+
+def test_order_is_checked_within_participant_and_session_only(tmp_path):
+    lines = [HEADER, "p01,1,1,1,a,a,0.5", "p02,1,1,1,a,a,0.5", "p01,1,1,2,a,a,0.5",
+             "p01,2,1,1,b,b,0.5", "p01,2,1,2,b,b,0.5"]
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert list(zip(frame["participant"], frame["session"], frame["trial"])) == [
+        ("p01", 1, 1), ("p01", 1, 2), ("p01", 2, 1), ("p01", 2, 2), ("p02", 1, 1)]
+
+
+def test_empty_or_fractional_integers(tmp_path):
+    lines = [HEADER, "p01,1,,1,a,a,0.5", "p01,1,1,2.5,b,b,0.5", "p01,1,1,3.0,b,b,0.5"]
+    problems = problems_of(write(tmp_path, lines))
+    assert [(p.line, p.column) for p in problems] == [(2, "block"), (3, "trial")]
+    assert "empty" in problems[0].message and "whole number" in problems[1].message
+
+
+def test_decreasing_block(tmp_path):
+    lines = [HEADER, "p01,1,2,1,a,a,0.5", "p01,1,1,2,b,b,0.5"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "block") and "decreases" in problem.message
+
+
+def test_empty_file(tmp_path):
+    for text in ("", "\n  \n"):
+        path = tmp_path / "empty.csv"
+        path.write_text(text)
+        (problem,) = problems_of(path)
+        assert problem.path == str(path) and "empty" in problem.message
+
+
+def test_header_without_rows(tmp_path):
+    (problem,) = problems_of(write(tmp_path, [HEADER]))
+    assert problem.line == 1 and "no data rows" in problem.message
+
+
+def test_wrong_delimiter(tmp_path):
+    lines = [line.replace(",", ";") for line in GOOD]
+    (problem,) = problems_of(write(tmp_path, lines, "log.csv"))
+    assert problem.line == 1
+    assert "wrong delimiter" in problem.message and "semicolons (';')" in problem.message
+
+
+def test_ragged_line(tmp_path):
+    lines = GOOD + ["p02,1,1,3,a,a"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert problem.line == 7 and "6 fields" in problem.message
+
+
+def test_mixed_case_and_stray_spaces_are_reported(tmp_path):
+    lines = [HEADER, "p01,1,1,1,A,a,0.5", "p01,1,1,2, b,a,0.5", "p01,1,1,3,c, C ,0.5"]
+    problems = problems_of(write(tmp_path, lines))
+    assert [(p.line, p.column) for p in problems] == [(2, "stimulus"), (3, "stimulus"),
+                                                      (4, "response")]
+    assert all("fix_labels=True" in p.message for p in problems)
+    assert "letter case" in problems[0].message and "stray spaces" in problems[1].message
+
+
+def test_fix_labels_fixes_and_records(tmp_path):
+    lines = [HEADER, "p01,1,1,1,A,a,0.5", "p01,1,1,2, b,a,0.5", "p02,1,1,1,c, C ,0.5",
+             "p02,1,1,2,c,a,0.5"]
+    frame = load_log(write(tmp_path, lines), TASK, fix_labels=True)
+    assert list(frame["stimulus"]) == ["a", "b", "c", "c"]
+    assert list(frame["response"]) == ["a", "a", "c", "a"]
+    warnings = log_warnings(frame)
+    assert sum("read as the task's symbol" in w for w in warnings) == 3
+    summary = log_summary(frame)
+    assert list(summary["labels_fixed"]) == [2, 1, 3]
+
+
+def test_problems_are_collected_not_stopped_at_the_first(tmp_path):
+    lines = [HEADER, "p01,1,1,1,a,z,0.5", "p01,1,1,1,b,b,-1"]
+    problems = problems_of(write(tmp_path, lines))
+    assert [p.line for p in problems] == [2, 3, 3]  # in file order
+    assert sorted((p.line, p.column) for p in problems) == [(2, "response"), (3, "rt"),
+                                                           (3, "trial")]
+    assert all(p.path for p in problems)
+
+
+def test_group_must_be_constant_per_participant(tmp_path):
+    lines = ["participant,group,block,trial,stimulus,response",
+             "p01,young,1,1,a,a", "p01,old,1,2,a,a"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "group")
+
+
+def test_reveal_before_prompt(tmp_path):
+    lines = [HEADER + ",onset,reveal_onset", "p01,1,1,1,a,a,0.5,10.0,10.6",
+             "p01,1,1,2,a,a,0.5,12.0,11.9"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, "reveal_onset")
+
+
+def test_parquet_without_pyarrow_names_the_package(tmp_path):
+    try:
+        import pyarrow  # noqa: F401
+        pytest.skip("pyarrow is installed")
+    except ImportError:
+        pass
+    path = tmp_path / "log.parquet"
+    path.write_bytes(b"PAR1")
+    (problem,) = problems_of(path)
+    assert "pyarrow" in problem.message and problem.path == str(path)
+
+
+# --- missed guesses, guess-only logs, personal data --------------------------
+
+def test_rt_on_missed_guess_is_a_warning(tmp_path):
+    lines = GOOD[:3] + ["p01,1,1,2,c,,0.7"]
+    frame = load_log(write(tmp_path, lines), TASK)
+    row = frame[frame["missed"]].iloc[0]
+    assert row["rt"] == 0.7 and row["rt_flag"] == "missed" and not row["rt_ok"]
+    assert any("missed guess" in w and "line 4" in w for w in log_warnings(frame))
+    assert log_summary(frame)["missed_with_rt"].iloc[-1] == 1
+
+
+@pytest.mark.parametrize("drop_rt", [True, False])
+def test_guess_only_log(tmp_path, drop_rt):
+    lines = [line.rsplit(",", 1)[0] + ("" if drop_rt else ",") for line in GOOD]
+    if not drop_rt:
+        lines[0] = HEADER
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert frame["rt"].isna().all() and not frame["rt_ok"].any()
+    assert set(frame["rt_flag"]) == {"missed", "no-rt"}
+    assert any("RT analyses will be skipped" in w for w in log_warnings(frame))
+
+
+def test_identifying_columns_are_dropped_with_a_warning(tmp_path):
+    lines = [HEADER + ",FirstName,email,date_of_birth,condition",
+             "p01,1,1,1,a,a,0.5,Ann,ann@example.org,2001-01-01,x"]
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert not {"FirstName", "email", "date_of_birth", "condition"} & set(frame.columns)
+    (personal,) = [w for w in log_warnings(frame) if "personal data" in w]
+    assert "'FirstName'" in personal and "'email'" in personal and "'date_of_birth'" in personal
+    assert "condition" not in personal
+
+
+# --- RT screening ------------------------------------------------------------
+
+def test_default_screen_limits():
+    # floor: common practice (premature presses below about 0.1-0.15 s); ceiling 3 s: our choice.
+    assert (RTScreen().floor, RTScreen().ceiling, RTScreen().mad_k) == (0.15, 3.0, None)
+
+
+def test_floor_and_ceiling_flag_without_removing(tmp_path):
+    lines = [HEADER] + [f"p01,1,1,{i},a,b,{rt}" for i, rt in
+                        enumerate(["0.08", "0.15", "0.9", "3.0", "4.2", "0"], start=1)]
+    frame = load_log(write(tmp_path, lines), TASK)
+    assert list(frame["rt_flag"]) == ["fast", "", "", "", "slow", "fast"]
+    loose = load_log(write(tmp_path, lines), TASK, screen=RTScreen(floor=0.05, ceiling=5.0))
+    assert list(loose["rt_flag"]) == ["", "", "", "", "", "fast"]
+    assert len(frame) == len(loose) == 6
+    summary = log_summary(frame, totals=False)
+    assert summary.loc[0, ["rt_fast", "rt_slow", "rt_usable"]].tolist() == [2, 1, 3]
+
+
+def test_mad_scale_is_the_normal_consistency_constant():
+    # 1 / Phi^-1(3/4) = 1.4826 (Rousseeuw & Croux, 1993; common practice)
+    from foretell.logs import _MAD_SCALE
+    assert _MAD_SCALE == pytest.approx(1 / norm.ppf(0.75), rel=1e-12)
+    assert _MAD_SCALE == pytest.approx(1.4826, abs=1e-4)
+
+
+def test_mad_rule_matches_scipy_reference():
+    rng = np.random.default_rng(7)
+    rt = np.exp(rng.normal(-0.6, 0.35, size=200))
+    rt[[3, 50]] = [2.9, 0.16]  # inside floor/ceiling, far in log RT
+    frame = validate_log(pd.DataFrame({
+        "participant": ["p01"] * 100 + ["p02"] * 100, "block": 1,
+        "trial": np.tile(np.arange(1, 101), 2), "stimulus": "a", "response": "b", "rt": rt}),
+        TASK, screen=RTScreen(floor=0.15, ceiling=3.0, mad_k=3))
+    expected = []
+    for part in ("p01", "p02"):
+        x = np.log(rt[(frame["participant"] == part).to_numpy()])
+        # scaled MAD from SciPy (Virtanen et al., 2020), scale="normal"
+        mad = median_abs_deviation(x, scale="normal")
+        expected += list(np.abs(x - np.median(x)) > 3 * mad)
+    assert (frame["rt_flag"] == "mad").tolist() == expected
+    assert frame.loc[3, "rt_flag"] == "mad" and frame.loc[50, "rt_flag"] == "mad"
+    assert log_summary(frame)["rt_mad"].iloc[-1] == sum(expected)
+
+
+def test_mad_of_zero_flags_nothing_and_warns():
+    frame = validate_log(pd.DataFrame({
+        "participant": "p01", "block": 1, "trial": [1, 2, 3, 4], "stimulus": "a",
+        "response": "a", "rt": [0.5, 0.5, 0.5, 2.0]}), TASK, screen=RTScreen(mad_k=3))
+    assert (frame["rt_flag"] == "").all()
+    assert any("MAD of their 4 log RT(s) is 0" in w for w in frame.attrs["warnings"])
+    assert log_warnings(screen_rt(frame, RTScreen())) == []  # rescreening replaces it
+
+
+def test_rescreening_replaces_flags():
+    frame = validate_log(pd.DataFrame({
+        "participant": "p01", "block": 1, "trial": [1, 2], "stimulus": "a",
+        "response": "a", "rt": [0.12, 0.5]}), TASK)
+    assert list(frame["rt_flag"]) == ["fast", ""]
+    again = screen_rt(frame, RTScreen(floor=0.1))
+    assert list(again["rt_flag"]) == ["", ""] and again.attrs["rt_screen"].floor == 0.1
+    assert log_warnings(again) == log_warnings(frame) == []
+    assert list(frame["rt_flag"]) == ["fast", ""]
+
+
+@pytest.mark.parametrize("kwargs", [{"floor": -0.1}, {"floor": 1.0, "ceiling": 0.5},
+                                    {"mad_k": 0}, {"floor": float("nan")}])
+def test_bad_screen_is_a_usage_error(kwargs):
+    with pytest.raises(UsageError):
+        RTScreen(**kwargs)
+
+
+rts = st.lists(st.one_of(st.none(), st.floats(0, 10)), min_size=1, max_size=40)
+
+
+@settings(max_examples=60, deadline=None)
+@given(rts, st.floats(0, 1), st.floats(1.2, 8), st.sampled_from([None, 2.5, 3.0]))
+def test_screening_properties(rt, floor, ceiling, mad_k):
+    n = len(rt)
+    frame = validate_log(pd.DataFrame({
+        "participant": ["p01", "p02"] * (n // 2) + ["p01"] * (n % 2), "block": 1,
+        "trial": np.arange(1, n + 1), "stimulus": "a",
+        "response": ["" if i % 5 == 4 else "b" for i in range(n)],
+        "rt": [np.nan if r is None else r for r in rt]}), TASK,
+        screen=RTScreen(floor=floor, ceiling=ceiling, mad_k=mad_k))
+    assert len(frame) == n  # screening never removes a trial
+    assert set(frame["rt_flag"]) <= set(RT_FLAGS)
+    assert (frame["rt_ok"] == (frame["rt_flag"] == "")).all()
+    ok = frame[frame["rt_ok"]]
+    assert ((ok["rt"] >= floor) & (ok["rt"] <= ceiling) & (ok["rt"] > 0)).all()
+    stricter = screen_rt(frame, RTScreen(floor=min(floor + 0.1, 1.0), ceiling=ceiling - 0.01))
+    # without the MAD rule, a stricter screen never makes a trial usable again
+    assert not (stricter["rt_ok"] & ~screen_rt(frame, RTScreen(floor, ceiling))["rt_ok"]).any()
+
+
+# --- summary -----------------------------------------------------------------
+
+def test_summary_counts_and_totals(tmp_path):
+    lines = ["participant,group,session,block,trial,stimulus,response,rt",
+             "p01,young,1,1,1,a,a,0.5", "p01,young,1,2,2,a,,", "p01,young,2,1,1,a,b,0.1",
+             "p02,old,1,1,1,b,b,5.0", "p02,old,1,1,2,b,b,"]
+    summary = log_summary(load_log(write(tmp_path, lines), TASK))
+    assert list(summary.columns) == ["participant", "group", "sessions", "blocks", "trials",
+                                     "missed", "missed_with_rt", "rt_missing", "rt_fast",
+                                     "rt_slow", "rt_mad", "rt_usable", "labels_fixed"]
+    assert list(summary["participant"]) == ["p01", "p02", "all"]
+    assert summary["group"].tolist()[:2] == ["young", "old"] and pd.isna(summary["group"][2])
+    rows = summary.set_index("participant")[["sessions", "blocks", "trials", "missed",
+                                             "rt_missing", "rt_fast", "rt_slow", "rt_usable"]]
+    assert rows.loc["p01"].tolist() == [2, 3, 3, 1, 0, 1, 0, 1]
+    assert rows.loc["p02"].tolist() == [1, 1, 2, 0, 1, 0, 1, 0]
+    assert rows.loc["all"].tolist() == (rows.loc["p01"] + rows.loc["p02"]).tolist()
