@@ -23,7 +23,8 @@ def choice_log_proba(pred: np.ndarray, inv_temp: float, lapse: float) -> np.ndar
     s = log_softmax(inv_temp * np.log(np.maximum(pred, _TINY)), axis=-1)
     if lapse <= 0.0:
         return s
-    return np.logaddexp(np.log1p(-lapse) + s, np.log(lapse / m))
+    with np.errstate(divide="ignore"):  # lapse = 1: log(0) + s = -inf, the softmax term vanishes
+        return np.logaddexp(np.log1p(-lapse) + s, np.log(lapse / m))
 
 
 def choice_proba(pred: np.ndarray, inv_temp: float, lapse: float) -> np.ndarray:

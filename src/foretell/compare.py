@@ -602,9 +602,11 @@ def summary_text(winners: pd.DataFrame, selection: pd.DataFrame,
             if fam is not None:
                 lines.append(f"  family ahead: {fam[0]} (protected exceedance {fam[1]:.2f})")
         mine = winners if group == ALL else winners[winners["group"].astype("string") == group]
-        keys = [k for k in ("session", "block") if k in mine.columns]
+        per_block = mine[mine["block"] != ALL]
+        keys = [k for k in ("session", "block") if k in mine.columns
+                and (k == "block" or per_block[k].nunique() > 1)]
         shift = []
-        for labels, wb in mine[mine["block"] != ALL].groupby(keys, sort=False):
+        for labels, wb in per_block.groupby(keys, sort=False):
             labels = labels if isinstance(labels, tuple) else (labels,)
             where = " ".join(f"{k} {v}" for k, v in zip(keys, labels))
             model_b = None

@@ -1,0 +1,75 @@
+"""The embedded demo study: an invented lantern-relay experiment with two groups of simulated participants.
+
+A fictional lab shows a relay tower whose red, green and blue lanterns light
+one at a time (task ``lantern-relay``: the next lantern depends on the last
+one to three) and asks people to guess the next lantern. Two invented groups:
+``rested`` participants come to use deep contexts (tree-mixture, depth-2 and
+task-structure learners), ``sleep-restricted`` participants stay shallow
+(depth-1 counting, or memoryless counting with forgetting), guess less
+deterministically, lapse and miss more and answer more slowly. 28
+participants, 5 blocks of 120 trials. No real study or person is described.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import math
+from pathlib import Path
+
+import pandas as pd
+
+from foretell.errors import TaskError
+from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
+from foretell.tasks import Task, load_task
+
+DEMO_SEED = 20240611
+DEMO_PARTICIPANTS = 28
+DEMO_BLOCKS = 5
+_DATA = Path(__file__).parent / "data"
+
+_RESTED_RT = RTLaw()
+_RESTRICTED_RT = RTLaw(log_scale=math.log(0.32), sigma=0.3)
+DEMO_GROUPS: dict[str, tuple[ParticipantSpec, ...]] = {
+    "rested": tuple(ParticipantSpec(model, inv_temp=(1.5, 5.0), lapse=(0.01, 0.05), rt=_RESTED_RT,
+                                    miss_rate=0.015)
+                    for model in ("mix-4", "count-2", "count-task")),
+    "sleep-restricted": (
+        ParticipantSpec("count-1", inv_temp=(0.8, 3.0), lapse=(0.03, 0.10), rt=_RESTRICTED_RT,
+                        miss_rate=0.04),
+        ParticipantSpec("count-0-leak", inv_temp=(0.8, 3.0), lapse=(0.03, 0.10),
+                        leak=(0.15, 0.4), rt=_RESTRICTED_RT, miss_rate=0.04),
+    ),
+}
+
+
+def task_path(name: str) -> Path:
+    """Return the path of a task file shipped with foretell (package data, else the source tree)."""
+    shipped = importlib.resources.files("foretell") / "tasks" / name
+    if shipped.is_file():
+        return Path(str(shipped))
+    source = Path(__file__).resolve().parents[2] / "tasks" / name
+    if source.is_file():
+        return source
+    raise TaskError(f"task file {name!r} is not shipped with this installation of foretell",
+                    path=str(source))
+
+
+def demo_task() -> Task:
+    """Return the demo study's task (lantern-relay)."""
+    return load_task(task_path("lantern-relay.toml"))
+
+
+def make_demo_data(seed: int = DEMO_SEED) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Return (log, truth) of the demo study, regenerated deterministically from ``seed``."""
+    return simulate_participants(demo_task(), DEMO_PARTICIPANTS, DEMO_BLOCKS,
+                                 groups=DEMO_GROUPS, seed=seed)
+
+
+def demo_log() -> pd.DataFrame:
+    """Return the shipped demo response log (canonical columns; missed guesses have no response)."""
+    return pd.read_csv(_DATA / "demo_log.csv", keep_default_na=False, na_values={"rt": [""]})
+
+
+def demo_truth() -> pd.DataFrame:
+    """Return the shipped truth table of the demo study (generating model and parameters)."""
+    return pd.read_csv(_DATA / "demo_truth.csv")
