@@ -61,31 +61,30 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    p = sub.add_parser("demo", help="fit the embedded demo study and print the summary",
-                       formatter_class=argparse.RawDescriptionHelpFormatter,
-                       epilog="example:\n  foretell demo --out demo-results/\n")
+    def command(name: str, help_: str, *examples: str) -> argparse.ArgumentParser:
+        return sub.add_parser(name, help=help_, formatter_class=argparse.RawDescriptionHelpFormatter,
+                              epilog="examples:\n" + "".join(f"  {e}\n" for e in examples))
+
+    p = command("demo", "fit the embedded demo study and print the summary",
+                "foretell demo", "foretell demo --out demo-results/ --jobs 2")
     p.add_argument("--out", help="also write the result tables to this directory")
     p.add_argument("--jobs", type=int, default=1, help="participants fitted in parallel")
     p.add_argument("--force", action="store_true", help="replace a non-empty output directory")
 
-    p = sub.add_parser("task", help="describe a task file: contexts, probabilities, entropy rate",
-                       formatter_class=argparse.RawDescriptionHelpFormatter,
-                       epilog="example:\n  foretell task tasks/tide-gauge.toml\n")
+    p = command("task", "describe a task file: contexts, probabilities, entropy rate",
+                "foretell task tasks/tide-gauge.toml")
     p.add_argument("task", help="task file (TOML)")
 
-    p = sub.add_parser("check", help="validate a response log against its task and summarise it",
-                       formatter_class=argparse.RawDescriptionHelpFormatter,
-                       epilog="examples:\n  foretell check s01.csv --task tasks/lantern-relay.toml\n"
-                              "  foretell check lab.tsv --task t.toml --map response=guess "
-                              "--map rt=RT --rt-unit ms\n")
+    p = command("check", "validate a response log against its task and summarise it",
+                "foretell check s01.csv --task tasks/lantern-relay.toml",
+                "foretell check lab.tsv --task t.toml --map response=guess --map rt=RT --rt-unit ms")
     _add_log_options(p)
     _add_screen_options(p)
 
-    p = sub.add_parser("fit", help="fit every learner model per participant and compare them",
-                       formatter_class=argparse.RawDescriptionHelpFormatter,
-                       epilog="examples:\n  foretell fit study.csv --task tasks/lantern-relay.toml "
-                              "--out results/\n  foretell fit study.csv --task t.toml --out r/ "
-                              "--models count-0,count-1,mix-3 --free leak --jobs 2\n")
+    p = command("fit", "fit every learner model per participant and compare them",
+                "foretell fit study.csv --task tasks/lantern-relay.toml --out results/",
+                "foretell fit study.csv --task t.toml --out r/ --models count-0,count-1,mix-3 "
+                "--free leak --jobs 2")
     _add_log_options(p)
     _add_screen_options(p)
     p.add_argument("--out", required=True, help="directory for the result tables (CSV)")

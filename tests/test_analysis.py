@@ -1,0 +1,109 @@
+"""The whole job: foretell.fit and `foretell fit` write the contract tables."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import foretell
+from foretell.choice import choice_proba
+from foretell.cli import main
+from foretell.learners import Counting
+from foretell.tasks import load_task
+
+TASK_PATH = Path(__file__).resolve().parents[1] / "tasks" / "tide-gauge.toml"
+MODELS = ["count-0", "count-1", "count-2", "count-0-leak", "mix-3", "source"]
+
+CONTRACT = {
+    "fits": ["participant", "group", "model", "loglik", "n_params", "n_trials", "aic", "bic",
+             "cv_loglik", "inv_temp", "lapse", "converged"],
+    "blocks": ["participant", "group", "block", "model", "loglik", "n_trials", "inv_temp", "lapse"],
+    "winners": ["participant", "group", "block", "best_model", "criterion", "delta_bic", "clear"],
+    "selection": ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor"],
+    "selection_blocks": ["group", "block", "model", "expected_freq", "exceedance",
+                         "protected_exceedance", "bor"],
+    "families": ["group", "family", "expected_freq", "exceedance", "protected_exceedance", "bor"],
+    "contexts": ["participant", "block", "context", "n_obs", "leaf_prob", "in_source_tree"],
+}
+
+
+@pytest.fixture(scope="module")
+def study() -> pd.DataFrame:
+    """Four simulated participants (depth-0 and depth-1 counting learners), 3 blocks of 80 trials."""
+    task = load_task(TASK_PATH)
+    rng = np.random.default_rng(11)
+    rows = []
+    for p in range(4):
+        x = task.sample(240, seed=100 + p)
+        probs = choice_proba(Counting(depth=p % 2).predict_proba(x, 2), 3.0, 0.02)
+        guesses = (rng.random(240) > probs[:, 0]).astype(int)
+        for t in range(240):
+            rows.append({"participant": f"p{p + 1:02d}", "group": "g1" if p < 2 else "g2",
+                         "block": t // 80 + 1, "trial": t + 1, "stimulus": task.symbols[x[t]],
+                         "response": "" if t == 50 else task.symbols[guesses[t]],
+                         "rt": np.nan if t == 50 else 0.4 + 0.1 * rng.random()})
+    return pd.DataFrame(rows)
+
+
+@pytest.fixture(scope="module")
+def result(study: pd.DataFrame) -> foretell.analysis.FitResult:
+    return foretell.fit(study, TASK_PATH, models=MODELS, seed=3, n_starts=2)
+
+
+def test_tables_hold_the_contract_columns(result) -> None:
+    tables = result.tables()
+    for name, columns in CONTRACT.items():
+        assert set(columns) <= set(tables[name].columns), name
+    fits = result.fits
+    assert set(fits["model"]) == set(MODELS)
+    assert len(fits) == 4 * len(MODELS)
+    # all models are scored on the same trials: 240 minus warm-up (K = 3) minus one missed guess
+    assert fits["n_trials"].nunique() == 1 and fits["n_trials"].iloc[0] == 240 - 3 - 1
+    assert set(result.winners["block"]) == {"all", "1", "2", "3"}
+    assert set(result.selection["group"]) == {"all", "g1", "g2"}
+
+
+def test_bic_and_aic_follow_their_definitions(result) -> None:
+    # AIC = 2k - 2 ln L (Akaike, 1974); BIC = k ln n - 2 ln L (Schwarz, 1978); from memory.
+    f = result.fits
+    assert np.allclose(f["aic"], 2 * f["n_params"] - 2 * f["loglik"])
+    assert np.allclose(f["bic"], f["n_params"] * np.log(f["n_trials"]) - 2 * f["loglik"])
+
+
+def test_same_seed_same_tables(study, result) -> None:
+    again = foretell.fit(study, TASK_PATH, models=MODELS, seed=3, n_starts=2)
+    for name, table in result.tables().items():
+        pd.testing.assert_frame_equal(table, again.tables()[name], check_exact=False, rtol=1e-12)
+
+
+def test_cli_fit_writes_the_directory_atomically(study, tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    log = tmp_path / "study.csv"
+    study.to_csv(log, index=False)
+    out = tmp_path / "results"
+    args = ["fit", str(log), "--task", str(TASK_PATH), "--out", str(out), "--models",
+            ",".join(MODELS), "--starts", "1"]
+    assert main(args) == 0
+    written = {p.name for p in out.iterdir()}
+    assert {f"{name}.csv" for name in CONTRACT} <= written and "summary.txt" in written
+    assert "group all" in capsys.readouterr().out
+    fits = pd.read_csv(out / "fits.csv")
+    assert set(fits["model"]) == set(MODELS)
+    # a second run refuses to overwrite, and --force replaces
+    assert main(args) == 1
+    assert "--force" in capsys.readouterr().err
+    assert main(args + ["--force"]) == 0
+
+
+def test_cli_fit_unknown_model_is_reported(study, tmp_path: Path,
+                                           capsys: pytest.CaptureFixture[str]) -> None:
+    log = tmp_path / "study.csv"
+    study.to_csv(log, index=False)
+    code = main(["fit", str(log), "--task", str(TASK_PATH), "--out", str(tmp_path / "r"),
+                 "--models", "count-0,count-banana"])
+    assert code in (1, 2)
+    assert "count-banana" in capsys.readouterr().err
+    assert not (tmp_path / "r").exists()
