@@ -107,3 +107,20 @@ def test_cli_fit_unknown_model_is_reported(study, tmp_path: Path,
     assert code in (1, 2)
     assert "count-banana" in capsys.readouterr().err
     assert not (tmp_path / "r").exists()
+
+
+def test_summary_reports_convergence(result) -> None:
+    assert "optimiser:" in result.summary
+
+
+def test_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--jobs", "2"]) == 0
+    text = capsys.readouterr().out
+    assert "group rested" in text and "group sleep-restricted" in text
+    assert "check against the simulation's truth" in text
+    fits = pd.read_csv(out / "fits.csv")
+    assert fits["participant"].nunique() == 28
+    # the demo's two groups differ in how they learn: the family-level selection must see it
+    fam = pd.read_csv(out / "families.csv").set_index(["group", "family"])["protected_exceedance"]
+    assert fam[("rested", "deep")] > 0.9 and fam[("sleep-restricted", "shallow")] > 0.9

@@ -7,18 +7,12 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pytest
 
 from foretell.contexts import STATUSES, context_agreement, context_report
 from foretell.learners import TreeMixture
 from foretell.tasks import load_task
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
-
-
-@pytest.fixture(scope="module")
-def lantern():
-    return load_task(TASKS / "lantern-relay.toml")
 
 
 def _log(x, guesses, block, session=1, participant="p1", missed=None):

@@ -20,19 +20,9 @@ from foretell.fitting import _correlations, choice_terms, fit_participant, fit_p
 from foretell.learners import Counting, Source
 from foretell.models import parse_model
 from foretell.simulate import ParticipantSpec, simulate_participant, simulate_participants
-from foretell.tasks import Task, load_task
+from foretell.tasks import Task
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
-
-
-@pytest.fixture(scope="module")
-def lantern() -> Task:
-    return load_task(TASKS / "lantern-relay.toml")
-
-
-@pytest.fixture(scope="module")
-def tide() -> Task:
-    return load_task(TASKS / "tide-gauge.toml")
 
 
 def simulated_log(task: Task, learner, inv_temp: float, lapse: float, n_trials: int,

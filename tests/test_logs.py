@@ -443,3 +443,15 @@ def test_summary_counts_and_totals(tmp_path):
     assert rows.loc["p01"].tolist() == [2, 3, 3, 1, 0, 1, 0, 1]
     assert rows.loc["p02"].tolist() == [1, 1, 2, 0, 1, 0, 1, 0]
     assert rows.loc["all"].tolist() == (rows.loc["p01"] + rows.loc["p02"]).tolist()
+
+
+@pytest.mark.parametrize("column", ["participant", "group"])
+def test_reserved_all_label_is_refused(column: str, tmp_path) -> None:
+    # "all" labels everyone / the whole session in every output table, so an id "all" would collide.
+    task = Task.from_dict({"name": "t", "symbols": ["a", "b"],
+                           "contexts": [{"past": [], "next": {"a": 0.5, "b": 0.5}}]})
+    frame = pd.DataFrame({"participant": ["p01", "p01"], "group": ["g", "g"], "block": [1, 1],
+                          "trial": [1, 2], "stimulus": ["a", "b"], "response": ["a", "a"]})
+    frame[column] = "all"
+    with pytest.raises(LogError, match="reserved"):
+        validate_log(frame, task)

@@ -9,19 +9,8 @@ import pytest
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source, TaskCounting, TreeMixture
 from foretell.models import PARAMS, default_models, model_specs, parse_model
-from foretell.tasks import load_task
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
-
-
-@pytest.fixture(scope="module")
-def lantern():
-    return load_task(TASKS / "lantern-relay.toml")
-
-
-@pytest.fixture(scope="module")
-def compass():
-    return load_task(TASKS / "compass-fair.toml")
 
 
 def test_default_models_follow_the_issue(lantern, compass):

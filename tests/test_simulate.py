@@ -15,20 +15,9 @@ from foretell.errors import UsageError
 from foretell.learners import Counting, Source
 from foretell.logs import load_log, validate_log
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participant, simulate_participants
-from foretell.tasks import load_task
 
 ROOT = Path(__file__).resolve().parents[1]
 TASKS = ROOT / "tasks"
-
-
-@pytest.fixture(scope="module")
-def lantern():
-    return load_task(TASKS / "lantern-relay.toml")
-
-
-@pytest.fixture(scope="module")
-def compass():
-    return load_task(TASKS / "compass-fair.toml")
 
 
 def test_same_seed_same_frames_and_canonical_format(lantern):

@@ -192,7 +192,7 @@ def random_tasks(draw: st.DrawFn) -> Task:
 
     contexts = grow(())
     rows = []
-    for c in contexts:
+    for _ in contexts:
         w = np.array(draw(st.lists(st.integers(0, 5), min_size=m, max_size=m)), dtype=float)
         if w.sum() == 0:
             w[0] = 1.0

@@ -81,10 +81,26 @@ def fit(log: pd.DataFrame | str | Path, task: Task | str | Path,
     selection_blocks = compare.selection_blocks(tables.blocks, tables.fits)
     families = compare.families(tables.fits, criterion=criterion)
     contexts = context_report(log, task, max_depth=context_depth)
-    summary = compare.summary_text(winners, selection, selection_blocks, families)
+    summary = "\n".join([compare.summary_text(winners, selection, selection_blocks, families),
+                         convergence_text(tables.fits, tables.blocks)])
     return FitResult(fits=tables.fits, blocks=tables.blocks, predictions=tables.predictions,
                      winners=winners, selection=selection, selection_blocks=selection_blocks,
                      families=families, contexts=contexts,
                      context_agreement=context_agreement(contexts, task), summary=summary,
                      settings={"task": task.name, "models": sorted(tables.fits["model"].unique()),
                                "free": free, "seed": seed, "criterion": criterion})
+
+
+def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
+    """Return one line on optimiser failures: whole-session fits, cross-validation folds, block refits."""
+    parts = [(int((~fits["converged"].astype(bool)).sum()), len(fits), "fits")]
+    if "cv_converged" in fits.columns:
+        parts.append((int((~fits["cv_converged"].astype(bool)).sum()), len(fits),
+                      "cross-validations"))
+    if "converged" in blocks.columns:
+        parts.append((int((~blocks["converged"].astype(bool)).sum()), len(blocks), "block refits"))
+    failed = [f"{k} of {n} {what}" for k, n, what in parts if k]
+    if not failed:
+        return "optimiser: every fit converged"
+    return ("optimiser: did not converge for " + ", ".join(failed)
+            + " (see the converged and message columns; comparisons leave those fits out)")

@@ -68,7 +68,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = command("demo", "fit the embedded demo study and print the summary",
                 "foretell demo", "foretell demo --out demo-results/ --jobs 2")
     p.add_argument("--out", help="also write the result tables to this directory")
-    p.add_argument("--jobs", type=int, default=1, help="participants fitted in parallel")
+    p.add_argument("--jobs", type=int, default=-1,
+                   help="participants fitted in parallel (default -1: all cores)")
     p.add_argument("--force", action="store_true", help="replace a non-empty output directory")
 
     p = command("task", "describe a task file: contexts, probabilities, entropy rate",
@@ -135,7 +136,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return 0
 
 
-def _run_fit(task, log, args: argparse.Namespace, out: str | None) -> int:
+def _run_fit(task, log, args: argparse.Namespace, out: str | None):
+    """Return the analysis of ``log`` after printing its summary (and writing it to ``out``)."""
     from .analysis import fit
     from .outputs import write_tables
 
@@ -148,21 +150,25 @@ def _run_fit(task, log, args: argparse.Namespace, out: str | None) -> int:
                             force=args.force)
         print(f"tables written to {path}/", file=sys.stderr)
     print(result.summary)
-    return 0
+    return result
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
     task, log = _load(args)
-    return _run_fit(task, log, args, args.out)
+    _run_fit(task, log, args, args.out)
+    return 0
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import demo_log, demo_task
+    from .demo import demo_log, demo_task, demo_truth, recovery_text
 
     task = demo_task()
     print(f"demo study: task {task.name!r} ({', '.join(task.symbols)}); simulated participants, "
           "fitted with the default model set", file=sys.stderr)
-    return _run_fit(task, demo_log(), args, args.out)
+    result = _run_fit(task, demo_log(), args, args.out)
+    print()
+    print(recovery_text(result.winners, demo_truth()))
+    return 0
 
 
 COMMANDS = {"demo": _cmd_demo, "task": _cmd_task, "check": _cmd_check, "fit": _cmd_fit}

@@ -43,8 +43,7 @@ import pandas as pd
 from scipy import integrate, stats
 from scipy.special import digamma, gammainc, gammaln, logsumexp, softmax, xlogy
 
-ALL = "all"
-"""Label of the comparison over every participant (group) or the whole session (block)."""
+from .logs import ALL  # the label of the comparison over everyone (group) or the whole session (block)
 
 CLEAR_DELTA_BIC = 2.0
 """A BIC difference of at least 2 is 'positive' evidence (Raftery, 1995)."""

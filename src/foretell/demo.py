@@ -18,7 +18,9 @@ from pathlib import Path
 
 import pandas as pd
 
+from foretell.compare import default_families
 from foretell.errors import TaskError
+from foretell.logs import ALL
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.tasks import Task, load_task
 
@@ -73,3 +75,23 @@ def demo_log() -> pd.DataFrame:
 def demo_truth() -> pd.DataFrame:
     """Return the shipped truth table of the demo study (generating model and parameters)."""
     return pd.read_csv(_DATA / "demo_truth.csv")
+
+
+def recovery_text(winners: pd.DataFrame, truth: pd.DataFrame) -> str:
+    """Return how often each participant's whole-session BIC winner is its generating model, in words.
+
+    Counts exact model recovery and recovery of the model family
+    (:func:`foretell.compare.default_families`), overall and per group.
+    """
+    best = winners[winners["block"] == ALL][["participant", "best_model"]]
+    both = truth[["participant", "group", "model"]].merge(best, on="participant")
+    family = {m: f for f, ms in default_families(sorted(set(both["model"]) | set(both["best_model"])))
+              .items() for m in ms}
+    both["same_model"] = both["model"] == both["best_model"]
+    both["same_family"] = both["model"].map(family) == both["best_model"].map(family)
+    lines = ["check against the simulation's truth (whole-session BIC winner):"]
+    for group, part in both.groupby("group", sort=True):
+        lines.append(f"  {group}: generating model recovered for {int(part['same_model'].sum())}/"
+                     f"{len(part)}, its family (shallow/deep) for {int(part['same_family'].sum())}/"
+                     f"{len(part)}")
+    return "\n".join(lines)

@@ -25,6 +25,7 @@ REQUIRED = ("participant", "block", "trial", "stimulus", "response")
 DERIVED = ("stimulus_idx", "response_idx", "missed", "rt_ok", "rt_flag")
 RT_FLAGS = ("", "missed", "no-rt", "fast", "slow", "mad")
 RT_UNITS = {"s": 1.0, "ms": 1e-3}
+ALL = "all"  # the label of "everyone" / "the whole session" in output tables
 
 _DELIMITER_NAMES = {",": "commas", "\t": "tabs", ";": "semicolons", "|": "vertical bars"}
 _DELIMITER_OF_SUFFIX = {".csv": ",", ".tsv": "\t", ".tab": "\t"}
@@ -200,7 +201,7 @@ def log_summary(frame: pd.DataFrame, totals: bool = True) -> pd.DataFrame:
     table["participant"] = table["participant"].astype("str")
     if totals:
         counts = table.columns[2:]
-        total = pd.DataFrame({"participant": ["all"], "group": [pd.NA],
+        total = pd.DataFrame({"participant": [ALL], "group": [pd.NA],
                               **{c: [table[c].sum()] for c in counts}})
         table = pd.concat([table, total.astype(table.dtypes.to_dict())], ignore_index=True)
     return table
@@ -518,6 +519,11 @@ def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
         check.flag(times["reveal_onset"] < times["onset"], name["reveal_onset"],
                    f"reveal_onset is before onset ('{name['onset']}'): the stimulus is revealed "
                    "after the guess prompt")
+    for ids, canon in ((part, "participant"), (group, "group")):
+        if ids is not None:
+            check.flag(pd.Series(ids).eq(ALL).to_numpy(), name[canon],
+                       f"the {canon} id '{ALL}' is reserved: output tables use it for everyone; "
+                       "rename it")
     if part is not None and group is not None:
         first = pd.Series(group).groupby(part).transform("first").to_numpy()
         check.flag(group != first, name["group"], "participant is in more than one group (a group "

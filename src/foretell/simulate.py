@@ -172,7 +172,7 @@ def simulate_participants(task: Task, n_participants: int, n_blocks: int,
 
     ``groups`` maps a group name to the specs its participants cycle through
     (participants are dealt to groups in turn, so group sizes differ by at
-    most one); or ``models`` gives the specs of a single group named "all"
+    most one); or ``models`` gives the specs of a single group named "sim"
     (default: count-0, count-1, count-2 with the :class:`ParticipantSpec`
     ranges). A plain model identifier stands for ``ParticipantSpec(model)``.
     Participant ids are "p01", "p02", ... Each participant gets an
@@ -189,7 +189,7 @@ def simulate_participants(task: Task, n_participants: int, n_blocks: int,
     if isinstance(n_blocks, bool) or not isinstance(n_blocks, (int, np.integer)) or n_blocks < 1:
         raise UsageError(f"n_blocks must be a positive whole number, got {n_blocks!r}")
     if groups is None:
-        groups = {"all": models if models is not None else ("count-0", "count-1", "count-2")}
+        groups = {"sim": models if models is not None else ("count-0", "count-1", "count-2")}
     plan = {name: [s if isinstance(s, ParticipantSpec) else ParticipantSpec(s) for s in specs]
             for name, specs in groups.items()}
     empty = [name for name, specs in plan.items() if not specs]
