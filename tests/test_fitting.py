@@ -16,7 +16,8 @@ from sklearn.linear_model import LogisticRegression
 
 from foretell.choice import choice_log_proba
 from foretell.errors import UsageError
-from foretell.fitting import _correlations, choice_terms, fit_participant, fit_participants
+from foretell.choice import choice_terms
+from foretell.fitting import _correlations, fit_participant, fit_participants
 from foretell.learners import Counting, Source
 from foretell.models import parse_model
 from foretell.simulate import ParticipantSpec, simulate_participant, simulate_participants

@@ -34,6 +34,7 @@ from joblib import Parallel, delayed
 from scipy.optimize import OptimizeResult, minimize
 from sklearn.model_selection import LeaveOneGroupOut
 
+from foretell.choice import choice_terms
 from foretell.errors import LogError, UsageError
 from foretell.models import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS, ModelSpec, model_specs
 from foretell.tasks import Task
@@ -112,36 +113,6 @@ class FitTables:
     fits: pd.DataFrame
     blocks: pd.DataFrame
     predictions: pd.DataFrame
-
-
-# -- the choice-rule kernel ------------------------------------------------------------
-def choice_terms(log_pred: np.ndarray, guess: np.ndarray, inv_temp: float,
-                 lapse: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Return per-trial log P(guess) and its derivatives in inv_temp and in lapse.
-
-    With s = log_softmax(inv_temp * log p) and P = (1 - lapse) e^{s_g} + lapse/m:
-    d log P / d inv_temp = (1 - lapse) e^{s_g} (log p_g - sum_a e^{s_a} log p_a) / P and
-    d log P / d lapse = (1/m - e^{s_g}) / P (differentiating the choice rule of
-    :func:`foretell.choice.choice_log_proba`; softmax derivative, common practice).
-    ``log_pred`` has shape (n, m), ``guess`` holds n symbol indices.
-    """
-    n, m = log_pred.shape
-    rows = np.arange(n)
-    z = inv_temp * log_pred
-    z -= z.max(axis=1, keepdims=True)
-    expz = np.exp(z)
-    total = expz.sum(axis=1)
-    softmax = expz / total[:, None]
-    s_g = z[rows, guess] - np.log(total)  # log softmax at the guess
-    if lapse > 0.0:
-        logp = np.logaddexp(math.log1p(-lapse) + s_g, math.log(lapse / m))
-    else:
-        logp = s_g
-    share = np.exp(math.log1p(-lapse) + s_g - logp)  # (1 - lapse) e^{s_g} / P
-    d_inv_temp = share * (log_pred[rows, guess] - (softmax * log_pred).sum(axis=1))
-    with np.errstate(over="ignore"):
-        d_lapse = (1.0 / m - np.exp(s_g)) * np.exp(-logp)
-    return logp, d_inv_temp, d_lapse
 
 
 # -- one participant's trials ------------------------------------------------------------
