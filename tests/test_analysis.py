@@ -26,6 +26,7 @@ CONTRACT = {
     "selection_blocks": ["group", "block", "model", "expected_freq", "exceedance",
                          "protected_exceedance", "bor"],
     "families": ["group", "family", "expected_freq", "exceedance", "protected_exceedance", "bor"],
+    "families_blocks": ["group", "block", "family", "expected_freq", "protected_exceedance", "bor"],
     "contexts": ["participant", "block", "context", "n_obs", "leaf_prob", "in_source_tree"],
 }
 

@@ -82,3 +82,36 @@ def test_bad_map_is_a_usage_error(tmp_path: Path, capsys: pytest.CaptureFixture[
     log = _log(tmp_path, ["p01,1,1,up,down,0.41"])
     assert main(["check", str(log), "--task", str(TASKS / "tide-gauge.toml"), "--map", "oops"]) == 2
     assert "canonical=theirs" in capsys.readouterr().err
+
+
+def test_zero_jobs_is_a_usage_error(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    log = _log(tmp_path, ["p01,1,1,up,down,0.41"])
+    with pytest.raises(SystemExit) as exit_:
+        main(["fit", str(log), "--task", str(TASKS / "tide-gauge.toml"), "--out", str(tmp_path / "r"),
+              "--jobs", "0"])
+    assert exit_.value.code == 2 and "0 jobs" in capsys.readouterr().err
+
+
+def test_existing_output_is_refused_before_any_work(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    import foretell.analysis
+
+    def no_fit(*args, **kwargs):
+        raise AssertionError("fitting must not start when the output cannot be written")
+
+    monkeypatch.setattr(foretell.analysis, "fit", no_fit)
+    out = tmp_path / "results"
+    out.mkdir()
+    (out / "old.csv").write_text("x\n")
+    log = _log(tmp_path, ["p01,1,1,up,down,0.41"])
+    assert main(["fit", str(log), "--task", str(TASKS / "tide-gauge.toml"), "--out", str(out)]) == 1
+    assert "--force" in capsys.readouterr().err
+    blocked = tmp_path / "afile"
+    blocked.write_text("")
+    assert main(["fit", str(log), "--task", str(TASKS / "tide-gauge.toml"), "--out", str(blocked / "sub")]) == 1
+    assert "not a directory" in capsys.readouterr().err
+
+
+def test_task_by_shipped_name(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["task", "compass-fair"]) == 0
+    assert "task 'compass-fair'" in capsys.readouterr().out

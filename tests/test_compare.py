@@ -214,11 +214,10 @@ def test_families_must_partition_the_models():
 
 def test_default_families_of_the_default_model_set():
     # The definition: shallow = depth <= 1 leaky or not; deep = depth >= 2,
-    # count-task, mix-D; source (the oracle) in a family of its own.
+    # count-task, mix-D; source (the oracle) is neither and is left out.
     fams = default_families(DEFAULT_MODELS)
     assert fams == {"shallow": ["count-0", "count-1", "count-0-leak", "count-1-leak"],
-                    "deep": ["count-2", "count-3", "count-task", "mix-3"],
-                    "oracle": ["source"]}
+                    "deep": ["count-2", "count-3", "count-task", "mix-3"]}
     assert default_families(["count-0", "count-2"]) == {"shallow": ["count-0"], "deep": ["count-2"]}
     with pytest.raises(ValueError, match="no default family"):
         default_families(["count-0", "my-model"])
@@ -374,3 +373,14 @@ def test_block_tables_keep_sessions_and_check_the_whole_session_fit():
     assert set(zip(win["session"], win["block"])) == {("all", "all"), ("1", "1"), ("2", "1")}
     p07 = win[win["participant"] == "p07"]
     assert (~p07["clear"]).all() and p07["note"].str.contains("count-2").all()
+
+
+def test_family_table_leaves_out_models_in_no_family():
+    fits = _fits()
+    extra = fits[fits["model"] == "count-0"].assign(model="source", loglik=-1000.0, bic=2000.0)
+    table = families(pd.concat([fits, extra], ignore_index=True))
+    assert set(table["family"]) == {"shallow", "deep"}
+    assert table["note"].str.contains("not in any family: source").all()
+    # the same as the family comparison without the oracle in the table at all
+    plain = families(fits)
+    assert np.allclose(table["expected_freq"], plain["expected_freq"])

@@ -455,3 +455,31 @@ def test_reserved_all_label_is_refused(column: str, tmp_path) -> None:
     frame[column] = "all"
     with pytest.raises(LogError, match="reserved"):
         validate_log(frame, task)
+
+
+def test_map_onto_another_canonical_column_is_refused() -> None:
+    task = Task.from_dict({"name": "t", "symbols": ["a", "b"],
+                           "contexts": [{"past": [], "next": {"a": 0.5, "b": 0.5}}]})
+    frame = pd.DataFrame({"participant": ["p01"], "block": [1], "trial": [1], "stimulus": ["a"],
+                          "response": ["b"], "guess": ["a"]})
+    with pytest.raises(UsageError, match="'response' from 'stimulus'"):
+        validate_log(frame, task, columns={"response": "stimulus"})
+    swapped = validate_log(frame, task, columns={"response": "stimulus", "stimulus": "guess"})
+    assert swapped[["stimulus", "response"]].values.tolist() == [["a", "a"]]
+
+
+def test_seconds_read_as_milliseconds_warns() -> None:
+    task = Task.from_dict({"name": "t", "symbols": ["a", "b"],
+                           "contexts": [{"past": [], "next": {"a": 0.5, "b": 0.5}}]})
+    frame = pd.DataFrame({"participant": ["p01"] * 3, "block": [1] * 3, "trial": [1, 2, 3],
+                          "stimulus": ["a", "b", "a"], "response": ["b", "a", "a"],
+                          "rt": [0.41, 0.52, 0.38]})
+    out = validate_log(frame, task, rt_unit="ms")
+    assert any("if the RTs are in seconds" in w for w in out.attrs["warnings"])
+
+
+def test_missing_parquet_is_no_such_file(tmp_path) -> None:
+    task = Task.from_dict({"name": "t", "symbols": ["a", "b"],
+                           "contexts": [{"past": [], "next": {"a": 0.5, "b": 0.5}}]})
+    with pytest.raises(LogError, match="no such file"):
+        load_log(tmp_path / "nothing.parquet", task)

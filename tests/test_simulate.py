@@ -10,7 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from foretell.demo import demo_log, demo_task, demo_truth, make_demo_data, task_path
+from foretell.demo import demo_log, demo_task, demo_truth, make_demo_data
+from foretell.tasks import shipped_tasks
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source
 from foretell.logs import load_log, validate_log
@@ -128,7 +129,7 @@ def test_bad_specifications_are_refused(lantern):
 
 def test_demo_data_regenerates_exactly_and_loads():
     task = demo_task()
-    assert task.name == "lantern-relay" and task_path("lantern-relay.toml").is_file()
+    assert task.name == "lantern-relay" and shipped_tasks()["lantern-relay"].is_file()
     log, truth = make_demo_data()
     shipped = (Path(__file__).resolve().parents[1] / "src/foretell/data/demo_log.csv").read_text()
     assert log.to_csv(index=False) == shipped

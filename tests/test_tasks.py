@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 from foretell.errors import TaskError
-from foretell.tasks import Task, load_task
+from foretell.tasks import Task, load_task, shipped_tasks
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
 
@@ -218,3 +218,28 @@ def test_samples_follow_the_tree(task: Task, seed: int) -> None:
         freq = np.bincount(x[sel], minlength=task.n_symbols) / len(sel)
         p = task.next_probs[i]
         assert np.all(np.abs(freq - p) <= 6 * np.sqrt(p * (1 - p) / len(sel)) + 1e-12)
+
+
+def test_shipped_task_by_name() -> None:
+    assert {"lantern-relay", "tide-gauge", "compass-fair"} <= set(shipped_tasks())
+    assert load_task("tide-gauge").name == "tide-gauge"
+
+
+@pytest.mark.parametrize("make", ["directory", "binary"])
+def test_unreadable_task_is_a_task_error(tmp_path: Path, make: str) -> None:
+    if make == "directory":
+        path = tmp_path / "adir"
+        path.mkdir()
+    else:
+        path = tmp_path / "bin.toml"
+        path.write_bytes(b"name = \"\xff\xfe\"\n")
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    assert str(path) in str(err.value)
+
+
+def test_completeness_is_checked_for_very_deep_trees() -> None:
+    # 23 a's: 2**23 pasts, too many to list; the check walks the tree instead.
+    contexts = [{"past": ["a"] * 23, "next": {"a": 0.5, "b": 0.5}}]
+    with pytest.raises(TaskError, match=r"past ending in \[b\]"):
+        Task.from_dict({"name": "deep", "symbols": ["a", "b"], "contexts": contexts})

@@ -23,7 +23,8 @@ class FitResult:
     ``fits``, ``blocks``, ``predictions``: the per-participant fits
     (:class:`foretell.fitting.FitTables`); ``winners``: best model per
     participant, overall (block ``all``) and per block; ``selection``,
-    ``selection_blocks``, ``families``: random-effects model selection;
+    ``selection_blocks``, ``families``, ``families_blocks``: random-effects
+    model selection over models and over model families, overall and per block;
     ``contexts`` and ``context_agreement``: the learner-free response trees;
     ``summary``: the console summary in plain words.
     """
@@ -35,6 +36,7 @@ class FitResult:
     selection: pd.DataFrame
     selection_blocks: pd.DataFrame
     families: pd.DataFrame
+    families_blocks: pd.DataFrame
     contexts: pd.DataFrame
     context_agreement: pd.DataFrame
     summary: str
@@ -44,7 +46,8 @@ class FitResult:
         """Return the output tables by file stem (``fits`` -> fits.csv); per-trial predictions as ``trials``."""
         return {"fits": self.fits, "blocks": self.blocks, "winners": self.winners,
                 "selection": self.selection, "selection_blocks": self.selection_blocks,
-                "families": self.families, "contexts": self.contexts,
+                "families": self.families, "families_blocks": self.families_blocks,
+                "contexts": self.contexts,
                 "context_agreement": self.context_agreement, "trials": self.predictions}
 
 
@@ -80,27 +83,34 @@ def fit(log: pd.DataFrame | str | Path, task: Task | str | Path,
     selection = compare.selection(tables.fits, criterion=criterion)
     selection_blocks = compare.selection_blocks(tables.blocks, tables.fits)
     families = compare.families(tables.fits, criterion=criterion)
+    families_blocks = compare.families_blocks(tables.blocks, fits=tables.fits)
     contexts = context_report(log, task, max_depth=context_depth)
     summary = "\n".join([compare.summary_text(winners, selection, selection_blocks, families),
                          convergence_text(tables.fits, tables.blocks)])
     return FitResult(fits=tables.fits, blocks=tables.blocks, predictions=tables.predictions,
                      winners=winners, selection=selection, selection_blocks=selection_blocks,
-                     families=families, contexts=contexts,
+                     families=families, families_blocks=families_blocks, contexts=contexts,
                      context_agreement=context_agreement(contexts, task), summary=summary,
                      settings={"task": task.name, "models": sorted(tables.fits["model"].unique()),
                                "free": free, "seed": seed, "criterion": criterion})
 
 
 def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
-    """Return one line on optimiser failures: whole-session fits, cross-validation folds, block refits."""
-    parts = [(int((~fits["converged"].astype(bool)).sum()), len(fits), "fits")]
+    """Return one line on optimiser failures: whole-session fits, cross-validation folds, block refits.
+
+    A cross-validation that could not run (fewer than two blocks) is said so,
+    not counted as a failure.
+    """
+    parts = [(int(fits["converged"].eq(False).sum()), len(fits), "fits")]
+    notes = []
     if "cv_converged" in fits.columns:
-        parts.append((int((~fits["cv_converged"].astype(bool)).sum()), len(fits),
-                      "cross-validations"))
+        parts.append((int(fits["cv_converged"].eq(False).sum()), len(fits), "cross-validations"))
+        if fits["cv_converged"].isna().any():
+            notes.append("cross-validation skipped where a participant has fewer than two blocks")
     if "converged" in blocks.columns:
-        parts.append((int((~blocks["converged"].astype(bool)).sum()), len(blocks), "block refits"))
+        parts.append((int(blocks["converged"].eq(False).sum()), len(blocks), "block refits"))
     failed = [f"{k} of {n} {what}" for k, n, what in parts if k]
-    if not failed:
-        return "optimiser: every fit converged"
-    return ("optimiser: did not converge for " + ", ".join(failed)
+    line = ("optimiser: every fit converged" if not failed else
+            "optimiser: did not converge for " + ", ".join(failed)
             + " (see the converged and message columns; comparisons leave those fits out)")
+    return "; ".join([line, *notes])

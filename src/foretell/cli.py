@@ -28,6 +28,17 @@ def _parse_map(pairs: Sequence[str]) -> dict[str, str]:
     return out
 
 
+def _jobs(text: str) -> int:
+    """Return a joblib n_jobs value: a positive count, or -1 for all cores (-2 all but one, ...)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value == 0:
+        raise argparse.ArgumentTypeError("0 jobs cannot run anything: give 1, 2, ... or -1 for all cores")
+    return value
+
+
 def _csv_list(text: str | None) -> list[str] | None:
     return None if text is None else [t.strip() for t in text.split(",") if t.strip()]
 
@@ -47,7 +58,7 @@ def _add_fit_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--free", default="", help="extra free learner parameters: leak, alpha or leak,alpha")
     p.add_argument("--seed", type=int, default=0, help="seed of the optimiser's random starts")
     p.add_argument("--starts", type=int, default=3, help="optimiser starts per fit")
-    p.add_argument("--jobs", type=int, default=1, help="participants fitted in parallel (-1: all cores)")
+    p.add_argument("--jobs", type=_jobs, default=1, help="participants fitted in parallel (-1: all cores)")
     p.add_argument("--force", action="store_true", help="replace a non-empty output directory")
 
 
@@ -68,7 +79,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = command("demo", "fit the embedded demo study and print the summary",
                 "foretell demo", "foretell demo --out demo-results/ --jobs 2")
     p.add_argument("--out", help="also write the result tables to this directory")
-    p.add_argument("--jobs", type=int, default=-1,
+    p.add_argument("--jobs", type=_jobs, default=-1,
                    help="participants fitted in parallel (default -1: all cores)")
     p.add_argument("--force", action="store_true", help="replace a non-empty output directory")
 
@@ -139,8 +150,10 @@ def _cmd_check(args: argparse.Namespace) -> int:
 def _run_fit(task, log, args: argparse.Namespace, out: str | None):
     """Return the analysis of ``log`` after printing its summary (and writing it to ``out``)."""
     from .analysis import fit
-    from .outputs import write_tables
+    from .outputs import check_output_dir, write_tables
 
+    if out:
+        check_output_dir(out, force=args.force)
     result = fit(log, task, models=_csv_list(getattr(args, "models", None)),
                  free=tuple(_csv_list(getattr(args, "free", "")) or ()),
                  seed=getattr(args, "seed", 0), n_starts=getattr(args, "starts", 3),
@@ -189,6 +202,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except ForetellError as err:
         print(f"error: {err}", file=sys.stderr)
+        return 1
+    except OSError as err:  # a file the checks above could not foresee (disk full, permissions)
+        print(f"error: {err.filename or ''}: {err.strerror or err}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)

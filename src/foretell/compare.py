@@ -298,19 +298,18 @@ def default_families(model_ids: Sequence[str]) -> dict[str, list[str]]:
 
     "shallow": depth <= 1, leaky or not (``count-0``, ``count-1``, ``count-0-leak``,
     ``count-1-leak``, and ``mix-0``/``mix-1`` if present); "deep": depth >= 2
-    (``count-2`` ..., their leaky versions, ``count-task``, ``mix-D`` with D >= 2);
-    "oracle": ``source``, in a family of its own, because it learns nothing: it
-    is neither a shallow nor a deep learner, and keeping it in the partition
-    keeps the family comparison over the same models as the model comparison.
-    Other ids raise ValueError: pass explicit families for them.
+    (``count-2`` ..., their leaky versions, ``count-task``, ``mix-D`` with D >= 2).
+    ``source``, the oracle, learns nothing and is neither: it is left out of
+    the family comparison (which then runs on the other models only). Other
+    ids raise ValueError: pass explicit families for them.
     """
-    fams: dict[str, list[str]] = {"shallow": [], "deep": [], "oracle": []}
+    fams: dict[str, list[str]] = {"shallow": [], "deep": []}
     unknown = []
     for m in model_ids:
         depth = model_depth(m)
         if m == "source":
-            fams["oracle"].append(m)
-        elif m == "count-task" or (depth is not None and depth >= 2):
+            continue
+        if m == "count-task" or (depth is not None and depth >= 2):
             fams["deep"].append(m)
         elif depth is not None:
             fams["shallow"].append(m)
@@ -450,6 +449,11 @@ def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spe
         if families_spec is not None:
             spec = families_spec(models) if callable(families_spec) else families_spec
             names = list(spec)
+            members = [m for name in names for m in spec[name]]
+            outside = [m for m in models if m not in members]
+            if outside:
+                note = "; ".join(filter(None, [note, f"not in any family: {', '.join(outside)}"]))
+            wide, models = wide[[m for m in models if m in members]], [m for m in models if m in members]
         else:
             names = models
         base = {**labels, "n_participants": len(wide), "criterion": criterion}

@@ -12,17 +12,15 @@ participants, 5 blocks of 120 trials. No real study or person is described.
 
 from __future__ import annotations
 
-import importlib.resources
 import math
 from pathlib import Path
 
 import pandas as pd
 
 from foretell.compare import default_families
-from foretell.errors import TaskError
 from foretell.logs import ALL
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
-from foretell.tasks import Task, load_task
+from foretell.tasks import Task, load_task, shipped_tasks
 
 DEMO_SEED = 20240611
 DEMO_PARTICIPANTS = 28
@@ -44,21 +42,9 @@ DEMO_GROUPS: dict[str, tuple[ParticipantSpec, ...]] = {
 }
 
 
-def task_path(name: str) -> Path:
-    """Return the path of a task file shipped with foretell (package data, else the source tree)."""
-    shipped = importlib.resources.files("foretell") / "tasks" / name
-    if shipped.is_file():
-        return Path(str(shipped))
-    source = Path(__file__).resolve().parents[2] / "tasks" / name
-    if source.is_file():
-        return source
-    raise TaskError(f"task file {name!r} is not shipped with this installation of foretell",
-                    path=str(source))
-
-
 def demo_task() -> Task:
     """Return the demo study's task (lantern-relay)."""
-    return load_task(task_path("lantern-relay.toml"))
+    return load_task(shipped_tasks()["lantern-relay"])
 
 
 def make_demo_data(seed: int = DEMO_SEED) -> tuple[pd.DataFrame, pd.DataFrame]:

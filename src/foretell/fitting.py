@@ -413,17 +413,18 @@ def _fit_model(spec: ModelSpec, trials: _Trials, options: FitOptions,
     return row, blocks, _prediction_frame(lik, best.values)
 
 
-def _cross_validate(lik: _Likelihood, best: _Optimum) -> tuple[float, bool]:
+def _cross_validate(lik: _Likelihood, best: _Optimum) -> tuple[float, bool | None]:
     """Return the leave-one-block-out held-out log-likelihood and whether every fold converged.
 
     Folds from scikit-learn's LeaveOneGroupOut with groups = block; the learner
     sees every stimulus; each fold is fitted on the other blocks' guesses
     (starting from the full-data estimate) and scored on the held-out block.
-    NaN with fewer than two blocks.
+    With fewer than two blocks there is nothing to hold out: (NaN, None), and
+    cv_converged is empty (not applicable) rather than False.
     """
     scored, units = lik.trials.scored, lik.trials.units
     if len(np.unique(units)) < 2:
-        return math.nan, False
+        return math.nan, None
     total, ok = 0.0, True
     for train, test in LeaveOneGroupOut().split(scored, groups=units):
         fold = _maximise(lik, scored[train], [best.z])
@@ -549,6 +550,8 @@ def fit_participants(log: pd.DataFrame, task: Task, models: Sequence[str | Model
     """
     options = FitOptions.make(free=free, fixed=fixed, n_starts=n_starts, cv=cv,
                               per_block=per_block, warmup=warmup)
+    if int(n_jobs) == 0:
+        raise UsageError("n_jobs must be a positive count or negative (-1: all cores); got 0")
     specs = model_specs(models, task, options.free)
     data = encode_log(log, task)
     parts = [part for _, part in data.groupby("participant", sort=False)]

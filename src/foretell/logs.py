@@ -35,6 +35,7 @@ _MISSING_NUMBER = {"", "na", "nan", "n/a", "null", "none"}
 _SHOW_LINES = 5
 _SHOW_LABELS = 10
 _MS_SUSPECT = 20.0  # a median RT above this many seconds is almost surely in ms
+_S_SUSPECT = 0.02  # a median RT below this many seconds (after ms -> s) was almost surely in s
 _MAD_SCALE = 1.0 / 0.6744897501960817  # 1 / Phi^-1(3/4): MAD -> SD under normality
 _IDENTIFYING = re.compile(
     r"(^|_)(first_?|last_?|full_?|sur|fore|given_?|family_?)?name($|_)"
@@ -212,6 +213,8 @@ def log_summary(frame: pd.DataFrame, totals: bool = True) -> pd.DataFrame:
 def _read_table(path: Path) -> tuple[pd.DataFrame, np.ndarray]:
     """Return the cells of the log file (as text) and the file line of each row."""
     source = str(path)
+    if not path.is_file():
+        raise LogError(Problem("no such file" if not path.exists() else "not a file", source))
     if path.suffix.lower() in _PARQUET_SUFFIXES:
         return _read_parquet(path)
     try:
@@ -450,6 +453,11 @@ def _resolve_columns(cells: pd.DataFrame, columns: Mapping[str, str] | None,
         raise UsageError(f"column(s) {', '.join(map(repr, twice))} mapped to more than one "
                          f"canonical column")
     names = {canon: columns.get(canon, canon) for canon in CANONICAL}
+    used = [c for c, name in names.items()
+            if name != c and name in CANONICAL and names[name] == name]
+    if used:
+        raise UsageError("column map reads " + ", ".join(f"'{c}' from '{names[c]}'" for c in used)
+                         + ", which is itself a canonical column: map that one to another column too")
     present = {canon: name for canon, name in names.items() if name in cells.columns}
     for canon in REQUIRED:
         if canon in present:
@@ -593,6 +601,10 @@ def _read_warnings(check: _Checker, frame: pd.DataFrame, name: dict[str, str],
         check.warnings.append(f"column '{name['rt']}': the median RT is "
                               f"{np.median(rt[has_rt]):g} s; if the RTs are in milliseconds, "
                               "pass rt_unit='ms' (CLI: --rt-unit ms)")
+    elif rt_unit == "ms" and np.median(rt[has_rt]) < _S_SUSPECT:
+        check.warnings.append(f"column '{name['rt']}': read as milliseconds, the median RT is "
+                              f"{np.median(rt[has_rt]):g} s; if the RTs are in seconds, drop "
+                              "rt_unit='ms' (CLI: --rt-unit)")
 
 
 def _mad_outliers(part: np.ndarray, rt: np.ndarray, eligible: np.ndarray,

@@ -2,10 +2,10 @@
 
 from __future__ import annotations
 
+import importlib.resources
 import math
 import tomllib
 from dataclasses import dataclass, field
-from itertools import product
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
@@ -309,17 +309,43 @@ class Task:
         return list(cls.pasts[i])
 
 
+def shipped_tasks() -> dict[str, Path]:
+    """Return the task files shipped with foretell, by name (the file stem).
+
+    Installed, they are package data (``foretell/tasks``); in a source
+    checkout they are the repository's ``tasks/`` folder.
+    """
+    for folder in (Path(str(importlib.resources.files("foretell"))) / "tasks",
+                   Path(__file__).resolve().parents[2] / "tasks"):
+        if folder.is_dir():
+            return {p.stem: p for p in sorted(folder.glob("*.toml"))}
+    return {}
+
+
 def load_task(path: str | Path) -> Task:
-    """Return the validated task described by a TOML task file."""
+    """Return the validated task described by a TOML task file.
+
+    ``path`` is a file, or the name of a task shipped with foretell (e.g.
+    ``"lantern-relay"``, see :func:`shipped_tasks`) when no such file exists.
+    """
     p = Path(path)
+    if not p.exists() and p.parent == Path(".") and p.stem in shipped_tasks():
+        p = shipped_tasks()[p.stem]
     try:
         with p.open("rb") as fh:
             data = tomllib.load(fh)
     except FileNotFoundError:
-        raise TaskError("task file not found", path=str(p)) from None
+        names = ", ".join(shipped_tasks()) or "none"
+        raise TaskError(f"task file not found (tasks shipped with foretell: {names})",
+                        path=str(p)) from None
     except tomllib.TOMLDecodeError as exc:
         line = _toml_error_line(str(exc))
         raise TaskError(f"not valid TOML: {exc}", path=str(p), line=line) from None
+    except UnicodeDecodeError as exc:
+        raise TaskError(f"not UTF-8 text (byte {exc.start}): a task file is TOML",
+                        path=str(p)) from None
+    except OSError as exc:
+        raise TaskError(f"cannot read the task file: {exc.strerror or exc}", path=str(p)) from None
     return _parse_task(data, str(p))
 
 
@@ -416,7 +442,8 @@ def _tree_problems(contexts: list[tuple[int, ...]], symbols: list[str],
                    path: str | None) -> list[Problem]:
     """Return the problems that keep ``contexts`` from being a complete context tree.
 
-    Complete: every past of maximal depth has exactly one context as a suffix.
+    Complete: every past of maximal depth has exactly one context as a suffix,
+    i.e. no context is a suffix of another and every inner node has all m children.
     """
     def show(c: Sequence[int]) -> str:
         return "[" + ", ".join(symbols[i] for i in c) + "]"
@@ -439,17 +466,18 @@ def _tree_problems(contexts: list[tuple[int, ...]], symbols: list[str],
                     column=f"contexts[{seen[c]}]"))
     if problems:
         return problems
-    depth = max(len(c) for c in contexts)
-    m = len(symbols)
-    if m**depth > MAX_CHAIN_STATES:
-        return problems
-    for past in product(range(m), repeat=depth):
-        if not any(past[depth - d:] in seen for d in range(depth + 1)):
-            problems.append(Problem(f"no context matches a past ending in {show(past)}: the "
-                                    "contexts are not a complete context tree", path=path,
-                                    column="contexts"))
-            if len(problems) >= 5:
-                break
+    # every proper suffix of a context is an inner node; the tree is complete when each inner
+    # node's m children (one older symbol prepended) are inner nodes or contexts
+    inner = {c[len(c) - d:] for c in contexts for d in range(len(c))}
+    for node in sorted(inner, key=lambda c: (len(c), c)):
+        for a in range(len(symbols)):
+            child = (a,) + node
+            if child not in inner and child not in seen:
+                problems.append(Problem(f"no context matches a past ending in {show(child)}: the "
+                                        "contexts are not a complete context tree", path=path,
+                                        column="contexts"))
+                if len(problems) >= 5:
+                    return problems
     return problems
 
 
