@@ -8,20 +8,20 @@ compute, for every trial at once, the counts each node had seen before it.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
-from scipy.signal import lfilter
 from scipy.special import gammaln
 
 from foretell.errors import UsageError
 
 MAX_CODE_DEPTH = 20  # and m**depth must stay inside int64 for the base-m context codes
-# Leaky counts: up to this many node x symbol streams, one dense linear filter over the whole
-# session beats the sparse scan (measured on 100,000 trials: lfilter ~0.6 ms per stream, the
-# scan 10-15 ms whatever the depth; benchmarks/learners.py).
-DENSE_STREAMS = 12
+# Leaky counts: block length B = max(MIN_SCAN_BLOCK, isqrt(n) // SCAN_BLOCK_DIVISOR) of the
+# blocked recursion (B Python-level steps of n/B elements; measured, benchmarks/learners.py).
+MIN_SCAN_BLOCK = 8
+SCAN_BLOCK_DIVISOR = 4
 
 
 def check_sequence(x: np.ndarray, n_symbols: int) -> np.ndarray:
@@ -149,53 +149,102 @@ class Grouping:
 
         count_t = (1 - leak) count_{t-1} + new_t for every node on every trial,
         so before trial t the observation of trial s weighs (1 - leak)^(t-1-s).
-        With few node x symbol streams (<= DENSE_STREAMS) this is one
-        first-order linear filter over all streams in session time
-        (scipy.signal.lfilter, y_t = (1 - leak) y_{t-1} + new_{t-1}); otherwise
-        a sparse scan along each node's own trials (:meth:`_leaky_scan`). Both
-        are the plain recursion up to rounding. Rows of trials outside the
-        grouping are 0.
-        """
-        m, n = self.n_symbols, len(self.order)
-        counts = np.zeros((self.n_trials, m))
-        if n == 0:
-            return counts
-        node = np.cumsum(self.first == np.arange(n)) - 1  # dense node index of each sorted position
-        n_streams = (node[-1] + 1) * m
-        if n_streams <= DENSE_STREAMS:
-            new = np.zeros((n_streams, self.n_trials))
-            new[node * m + self.symbols, self.order] = 1.0
-            decayed = lfilter([0.0, 1.0], [1.0, -(1.0 - leak)], new, axis=1)
-            counts[self.order] = decayed.reshape(-1, m, self.n_trials)[node, :, self.order]
-        else:
-            counts[self.order] = self._leaky_scan(leak)
-        return counts
-
-    def _leaky_scan(self, leak: float) -> np.ndarray:
-        """Return (len(order), m) forgotten counts before each trial, in sorted order, by a scan.
-
-        Along one node's trials t_1 < t_2 < ... the counts obey the first-order
-        recursion z_j = g_j z_{j-1} + g_j/(1-leak) e_{y_{j-1}} with
-        g_j = (1-leak)^(t_j - t_{j-1}) (g = 0 at a node's first trial), solved
-        for all trials at once by a parallel prefix scan over the pairs (g, u)
-        (composition (g2, u2) o (g1, u1) = (g2 g1, g2 u1 + u2); Hillis & Steele,
-        1986, from memory): ceil(log2 L) vectorised passes, L the longest run
-        whose decay has not underflowed to exactly 0, so nothing is truncated.
+        Along one node's trials t_1 < t_2 < ... (sorted positions p) the counts
+        obey the first-order recursion z_p = g_p z_{p-1} + h_p e_{y_{p-1}},
+        h_p = r^(t_p - t_{p-1} - 1), g_p = r h_p, r = 1 - leak (g = h = 0 at a
+        node's first trial). It is solved blockwise (:meth:`_scan_layout`):
+        the plain recursion inside blocks of B positions, run for all blocks
+        at once; the carried count Y_c at the end of block c,
+        Y_c = P_c Y_{c-1} + (block c's own end count) with P the exact power
+        r^(t_end(c) - t_end(c-1)) (0 across nodes), by a parallel prefix scan
+        over the blocks (composition (P2, Y2) o (P1, Y1) = (P2 P1, P2 Y1 + Y2);
+        Hillis & Steele, 1986, from memory), stopped once every remaining P is
+        exactly 0; then z_p += r^(t_p - t_end(c-1)) Y_{c-1}. Nothing is
+        truncated: the result is the recursion up to a few roundings per
+        position. When 1 - leak rounds to 1 these are the plain counts. Rows of
+        trials outside the grouping are 0; the array is new and writable.
         """
         r = 1.0 - leak
-        n = len(self.order)
-        g = np.zeros(n)
-        u = np.zeros((n, self.n_symbols))
-        cont = np.arange(1, n)[self.first[1:] != np.arange(1, n)]  # positions continuing a run
-        gap = self.order[cont] - self.order[cont - 1]
-        g[cont] = r ** gap
-        u[cont, self.symbols[cont - 1]] = r ** (gap - 1)
+        if r == 1.0 or len(self.order) == 0:
+            return np.array(self.prior_counts)
+        lay = self._scan_layout
+        m, n_blocks = self.n_symbols, lay.step_exponent.shape[1]
+        h = np.power(r, lay.step_exponent)  # (B, R): exponent inf -> h = 0 where no predecessor
+        g = h * r
+        z = np.zeros((lay.block, m, n_blocks))
+        z.ravel()[lay.previous_symbol_slot] = h.ravel()  # b_p = h_p e_{y_{p-1}}
+        tmp = np.empty((m, n_blocks))
+        for j in range(1, lay.block):  # the plain recursion, all blocks at once
+            np.multiply(z[j - 1], g[j], out=tmp)
+            z[j] += tmp
+        reach = np.power(r, lay.reach_exponent)  # r^(t_p - t_end(c-1)) within the node, else 0
+        carry_gain, carry = reach[-1].copy(), z[-1].copy()
         step = 1
-        while step < n and g[step:].any():
-            u[step:] += g[step:, None] * u[:-step]  # overlapping operands: numpy buffers them
-            g[step:] *= g[:-step]
+        while step < n_blocks and carry_gain[step:].any():
+            carry[:, step:] += carry_gain[step:] * carry[:, :-step]
+            carry_gain[step:] *= carry_gain[:-step]
             step *= 2
-        return u
+        z[:, :, 1:] += reach[:, None, 1:] * carry[None, :, :-1]
+        counts = np.zeros(self.n_trials * m + 1)  # the last slot takes the padding
+        counts[lay.destination] = z.ravel()
+        return counts[:-1].reshape(self.n_trials, m)
+
+    @cached_property
+    def _scan_layout(self) -> "_ScanLayout":
+        """Return the blocked layout of the sorted positions used by :meth:`leaky_prior_counts`.
+
+        Sorted position p = c B + j (padded to B R positions) sits at [j, c] of
+        (B, R) arrays, so step j of the recursion is one contiguous row for all
+        R blocks. Depends only on the grouping; computed once.
+        """
+        n, m = len(self.order), self.n_symbols
+        block = max(MIN_SCAN_BLOCK, math.isqrt(n) // SCAN_BLOCK_DIVISOR)
+        n_blocks = -(-n // block)
+        pos = np.arange(block * n_blocks)
+        real = pos < n
+        pad = np.zeros(len(pos), dtype=np.int64)
+        time = pad.copy()
+        time[:n] = self.order
+        start = pad.copy()
+        start[:n] = self.first
+        prev_sym = pad.copy()
+        prev_sym[1:n] = self.symbols[:-1]
+        cont = real & (start < pos)  # p continues its node's run
+        step = np.full(len(pos), np.inf)
+        step[cont] = time[cont] - time[pos[cont] - 1] - 1
+        end_prev = (pos // block) * block - 1  # last position of the previous block
+        within = real & (end_prev >= 0) & (start <= end_prev)
+        reach = np.full(len(pos), np.inf)
+        reach[within] = time[within] - time[end_prev[within]]
+        j, c = pos % block, pos // block
+        slot = (j * m + prev_sym) * n_blocks + c
+        dest = time[:, None] * m + np.arange(m)
+        dest[~real] = self.n_trials * m
+        return _ScanLayout(
+            block=block,
+            step_exponent=step.reshape(n_blocks, block).T.copy(),
+            reach_exponent=reach.reshape(n_blocks, block).T.copy(),
+            previous_symbol_slot=slot.reshape(n_blocks, block).T.ravel(),
+            destination=dest.reshape(n_blocks, block, m).transpose(1, 2, 0).ravel())
+
+
+@dataclass(frozen=True, eq=False)
+class _ScanLayout:
+    """Index arrays of the blocked leaky-count recursion (see Grouping._scan_layout).
+
+    ``step_exponent`` (B, R): t_p - t_{p-1} - 1, inf where p has no earlier
+    trial of its node (or is padding); ``reach_exponent`` (B, R):
+    t_p - t_end(c-1), inf unless that position is of p's node;
+    ``previous_symbol_slot``: flat index of [j, y_{p-1}, c] in a (B, m, R)
+    array; ``destination``: flat index in (n_trials, m) + 1 of each (B, m, R)
+    element (padding goes to the extra last slot).
+    """
+
+    block: int
+    step_exponent: np.ndarray
+    reach_exponent: np.ndarray
+    previous_symbol_slot: np.ndarray
+    destination: np.ndarray
 
 
 def dirichlet_predict(counts: np.ndarray, alpha: float) -> np.ndarray:
