@@ -17,8 +17,10 @@ def counting_predict(grouping: Grouping, alpha: float, leak: float) -> np.ndarra
     leak > 0) counts of what followed the trial's node before t; rows of
     trials outside the grouping are uniform.
     """
-    counts = grouping.leaky_prior_counts(leak) if leak > 0 else grouping.prior_counts
-    return dirichlet_predict(counts, alpha)
+    if leak > 0:  # the leaky counts are a new array: normalise them in place
+        counts = grouping.leaky_prior_counts(leak)
+        return dirichlet_predict(counts, alpha, out=counts)
+    return dirichlet_predict(grouping.prior_counts, alpha)
 
 
 @lru_cache(maxsize=32)
