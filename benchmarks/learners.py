@@ -70,7 +70,7 @@ def loop_mixture(x: np.ndarray, m: int, depth: int, alpha: float) -> np.ndarray:
                 q = [b * ei + (1 - b) * qi for ei, qi in zip(e, q)]
         out[t] = q
         a = int(x[t])
-        new_pw = None
+        new_pw = old_child_pw = 0.0  # both set at d = depth before they are read
         for d in range(depth, -1, -1):
             st = stats[d]
             counts = st[0]
