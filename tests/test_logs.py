@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import sys
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -287,12 +290,8 @@ def test_reveal_before_prompt(tmp_path):
     assert (problem.line, problem.column) == (3, "reveal_onset")
 
 
-def test_parquet_without_pyarrow_names_the_package(tmp_path):
-    try:
-        import pyarrow  # noqa: F401
-        pytest.skip("pyarrow is installed")
-    except ImportError:
-        pass
+def test_parquet_without_pyarrow_names_the_package(tmp_path, monkeypatch):
+    monkeypatch.setitem(sys.modules, "pyarrow", None)  # makes `import pyarrow` fail
     path = tmp_path / "log.parquet"
     path.write_bytes(b"PAR1")
     (problem,) = problems_of(path)
@@ -483,3 +482,19 @@ def test_missing_parquet_is_no_such_file(tmp_path) -> None:
                            "contexts": [{"past": [], "next": {"a": 0.5, "b": 0.5}}]})
     with pytest.raises(LogError, match="no such file"):
         load_log(tmp_path / "nothing.parquet", task)
+
+
+def test_parquet_log_equals_the_csv_log(tmp_path) -> None:
+    # Apache Parquet (an open standard) read through pandas/pyarrow: the same trials as the CSV.
+    pytest.importorskip("pyarrow")
+    from foretell.tasks import load_task
+
+    task = load_task("lantern-relay")
+    csv_path = Path(__file__).resolve().parents[1] / "src" / "foretell" / "data" / "demo_log.csv"
+    raw = pd.read_csv(csv_path, keep_default_na=False, na_values={"rt": [""]}).head(1200)
+    raw.to_csv(tmp_path / "log.csv", index=False)
+    raw.to_parquet(tmp_path / "log.parquet")
+    from_csv = load_log(tmp_path / "log.csv", task)
+    from_parquet = load_log(tmp_path / "log.parquet", task)
+    pd.testing.assert_frame_equal(from_csv.reset_index(drop=True), from_parquet.reset_index(drop=True),
+                                  check_dtype=False)
