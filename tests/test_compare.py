@@ -221,6 +221,9 @@ def test_default_families_of_the_default_model_set():
     assert default_families(["count-0", "count-2"]) == {"shallow": ["count-0"], "deep": ["count-2"]}
     with pytest.raises(ValueError, match="no default family"):
         default_families(["count-0", "my-model"])
+    # on a source of depth <= 1, counting on the task's contexts is a shallow learner
+    assert default_families(["count-0", "count-task", "count-2"], task_depth=1) == {
+        "shallow": ["count-0", "count-task"], "deep": ["count-2"]}
 
 
 # ----------------------------------------------------------------------------- tidy tables

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
 
@@ -82,8 +83,9 @@ def fit(log: pd.DataFrame | str | Path, task: Task | str | Path,
     winners = compare.winners(tables.fits, tables.blocks)
     selection = compare.selection(tables.fits, criterion=criterion)
     selection_blocks = compare.selection_blocks(tables.blocks, tables.fits)
-    families = compare.families(tables.fits, criterion=criterion)
-    families_blocks = compare.families_blocks(tables.blocks, fits=tables.fits)
+    by_family = partial(compare.default_families, task_depth=task.max_depth)
+    families = compare.families(tables.fits, by_family, criterion=criterion)
+    families_blocks = compare.families_blocks(tables.blocks, by_family, fits=tables.fits)
     contexts = context_report(log, task, max_depth=context_depth)
     summary = "\n".join([compare.summary_text(winners, selection, selection_blocks, families),
                          convergence_text(tables.fits, tables.blocks)])

@@ -293,12 +293,14 @@ def model_depth(model_id: str) -> int | None:
     return int(match.group(1)) if match else None
 
 
-def default_families(model_ids: Sequence[str]) -> dict[str, list[str]]:
+def default_families(model_ids: Sequence[str], task_depth: int | None = None) -> dict[str, list[str]]:
     """Return foretell's default model families over ``model_ids`` (empty families dropped).
 
     "shallow": depth <= 1, leaky or not (``count-0``, ``count-1``, ``count-0-leak``,
     ``count-1-leak``, and ``mix-0``/``mix-1`` if present); "deep": depth >= 2
     (``count-2`` ..., their leaky versions, ``count-task``, ``mix-D`` with D >= 2).
+    ``count-task`` counts on the task's contexts, so with ``task_depth`` (the
+    task's deepest context) given and at most 1 it is shallow.
     ``source``, the oracle, learns nothing and is neither: it is left out of
     the family comparison (which then runs on the other models only). Other
     ids raise ValueError: pass explicit families for them.
@@ -309,7 +311,9 @@ def default_families(model_ids: Sequence[str]) -> dict[str, list[str]]:
         depth = model_depth(m)
         if m == "source":
             continue
-        if m == "count-task" or (depth is not None and depth >= 2):
+        if m == "count-task":
+            fams["deep" if task_depth is None or task_depth >= 2 else "shallow"].append(m)
+        elif depth is not None and depth >= 2:
             fams["deep"].append(m)
         elif depth is not None:
             fams["shallow"].append(m)
