@@ -170,7 +170,7 @@ def main() -> None:
     x = task.encode(log.loc[log["participant"] == log["participant"].iloc[0], "stimulus"])
     for mid in ("count-2", "count-task", f"mix-{parse_model(models[-2], task).depth}", "source"):
         spec = parse_model(mid, task)
-        np.testing.assert_allclose(loop_predict(mid, task, x), spec.learner().predict_proba(x, 3), rtol=1e-9)
+        np.testing.assert_allclose(loop_predict(mid, task, x), spec.learner().next_proba(x, 3), rtol=1e-9)
     print("plain-loop learners agree with foretell.learners")
 
     t0 = time.perf_counter()

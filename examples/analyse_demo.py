@@ -28,7 +28,7 @@ def main() -> None:
     print(log_summary(log).tail(3).to_string(index=False), end="\n\n")
 
     # how deep the ideal learner looks as it learns the first participant's sequence
-    first = log[log["participant"] == log["participant"].iloc[0]]
+    first = log.frame[log.frame["participant"] == log.participants[0]]
     depth = TreeMixture(max_depth=4).mean_depth(first["stimulus_idx"].to_numpy(), task.n_symbols)
     per_block = first.assign(depth=depth).groupby("block")["depth"].mean()
     print("ideal learner's mean context depth per block:",

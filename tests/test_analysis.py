@@ -39,7 +39,7 @@ def study() -> pd.DataFrame:
     rows = []
     for p in range(4):
         x = task.sample(240, seed=100 + p)
-        probs = choice_proba(Counting(depth=p % 2).predict_proba(x, 2), 3.0, 0.02)
+        probs = choice_proba(Counting(depth=p % 2).next_proba(x, 2), 3.0, 0.02)
         guesses = (rng.random(240) > probs[:, 0]).astype(int)
         for t in range(240):
             rows.append({"participant": f"p{p + 1:02d}", "group": "g1" if p < 2 else "g2",

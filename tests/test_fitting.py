@@ -93,7 +93,7 @@ def test_loglik_aic_bic_follow_their_definitions(lantern):
         ll, n = 0.0, 0
         for _, session in log.groupby("session"):
             x = lantern.encode(session["stimulus"])
-            prob = choice_log_proba(Counting(depth=depth).predict_proba(x, 3), fit.inv_temp, fit.lapse)
+            prob = choice_log_proba(Counting(depth=depth).next_proba(x, 3), fit.inv_temp, fit.lapse)
             made = session["response"].ne("").to_numpy().copy()  # '' = missed (canonical log)
             made[:2] = False
             guess = lantern.encode(session["response"][made])
@@ -120,7 +120,7 @@ def test_warmup_and_missed_guesses_are_not_scored_but_feed_the_learner(lantern):
     pred = base.predictions[base.predictions["model"] == "count-0"]
     for number, session in log.groupby("session"):
         x = lantern.encode(session["stimulus"])
-        expected = Counting(depth=0).predict_proba(x, 3)
+        expected = Counting(depth=0).next_proba(x, 3)
         got = session[["trial"]].merge(pred[pred["session"] == number], on="trial", how="left")
         got = got[["p_red", "p_green", "p_blue"]].to_numpy()
         np.testing.assert_allclose(got, expected, rtol=1e-12)

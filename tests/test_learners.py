@@ -85,7 +85,7 @@ def test_counting_equals_the_plain_loop(depth, leak):
     m = 3
     x = np.random.default_rng(depth).integers(0, m, 2500)  # long enough for (1-leak)^gap to underflow
     want = loop_counting(x, m, suffix_keys(x, m, depth), depth, 0.5, leak)
-    got = Counting(depth=depth, alpha=0.5, leak=leak).predict_proba(x, m)
+    got = Counting(depth=depth, alpha=0.5, leak=leak).next_proba(x, m)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-14)
 
 
@@ -95,7 +95,7 @@ def test_counting_equals_the_plain_loop(depth, leak):
 def test_rows_sum_to_one_and_prequential_identity(m, depth, seed, n, alpha, leak, data):
     x = np.random.default_rng(seed).integers(0, m, n)
     model = Counting(depth=depth, alpha=alpha, leak=leak)
-    p = model.predict_proba(x, m)
+    p = model.next_proba(x, m)
     assert p.shape == (n, m)
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-12)
     np.testing.assert_allclose(p[:depth], 1.0 / m)
@@ -106,9 +106,9 @@ def test_rows_sum_to_one_and_prequential_identity(m, depth, seed, n, alpha, leak
 
 def test_repeated_calls_reuse_the_encoding_and_agree():
     x = np.random.default_rng(2).integers(0, 3, 3000)
-    first = Counting(depth=2, leak=0.2).predict_proba(x, 3)
-    Counting(depth=2, leak=0.5).predict_proba(x, 3)
-    again = Counting(depth=2, leak=0.2).predict_proba(x.tolist(), 3)
+    first = Counting(depth=2, leak=0.2).next_proba(x, 3)
+    Counting(depth=2, leak=0.5).next_proba(x, 3)
+    again = Counting(depth=2, leak=0.2).next_proba(x.tolist(), 3)
     np.testing.assert_array_equal(first, again)
 
 
@@ -116,7 +116,7 @@ def test_source_is_the_task_probabilities():
     task = load_task(TASKS / "lantern-relay.toml")
     x = task.sample(300, seed=4)
     model = Source(task)
-    p = model.predict_proba(x, 3)
+    p = model.next_proba(x, 3)
     d = task.max_depth
     np.testing.assert_allclose(p[:d], 1.0 / 3)
     np.testing.assert_allclose(p[d:], task.next_proba(x)[d:])
@@ -131,7 +131,7 @@ def test_task_counting_equals_the_plain_loop(leak):
     x = task.sample(1500, seed=9)
     keys = task.context_indices(x)
     want = loop_counting(x, 3, keys, task.max_depth, 1.0, leak)
-    got = TaskCounting(task, alpha=1.0, leak=leak).predict_proba(x, 3)
+    got = TaskCounting(task, alpha=1.0, leak=leak).next_proba(x, 3)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-14)
     assert TaskCounting(task).depth == task.max_depth
 
@@ -156,15 +156,15 @@ def test_bad_hyperparameters_are_refused(kwargs, word):
 def test_bad_inputs_are_refused():
     model = Counting(depth=1)
     with pytest.raises(UsageError, match=r"\[0, 3\)"):
-        model.predict_proba(np.array([0, 1, 3]), 3)
+        model.next_proba(np.array([0, 1, 3]), 3)
     with pytest.raises(UsageError, match="1-D"):
-        model.predict_proba(np.zeros((2, 2), dtype=int), 3)
+        model.next_proba(np.zeros((2, 2), dtype=int), 3)
     with pytest.raises(UsageError, match="n_symbols"):
-        model.predict_proba(np.array([0, 1]), 1)
+        model.next_proba(np.array([0, 1]), 1)
     with pytest.raises(UsageError, match="start"):
         model.log_evidence(np.array([0, 1, 2]), 3, start=4)
     task = load_task(TASKS / "tide-gauge.toml")
     with pytest.raises(UsageError, match="2 symbols"):
-        Source(task).predict_proba(np.array([0, 1, 2]), 3)
+        Source(task).next_proba(np.array([0, 1, 2]), 3)
     with pytest.raises(UsageError, match="Task"):
         TaskCounting("tide-gauge")

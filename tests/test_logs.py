@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 from scipy.stats import median_abs_deviation, norm
 
 from foretell.errors import LogError, UsageError
-from foretell.logs import (RT_FLAGS, RTScreen, load_log, log_summary, log_warnings,
+from foretell.logs import (RT_FLAGS, RTScreen, load_log, log_summary,
                            screen_rt, validate_log)
 from foretell.tasks import Task
 
@@ -45,7 +45,8 @@ def problems_of(path, **kwargs):
 
 def test_valid_log_gives_canonical_sorted_frame(tmp_path):
     path = write(tmp_path, GOOD)
-    frame = load_log(path, TASK)
+    log = load_log(path, TASK)
+    frame = log.frame
     assert list(frame.columns) == ["participant", "session", "block", "trial", "stimulus",
                                    "response", "rt", "stimulus_idx", "response_idx", "missed",
                                    "rt_ok", "rt_flag"]
@@ -59,15 +60,17 @@ def test_valid_log_gives_canonical_sorted_frame(tmp_path):
     assert frame["trial"].dtype == np.int64 and frame["rt"].dtype == np.float64
     assert frame["missed"].dtype == bool and frame["rt_ok"].dtype == bool
     assert pd.api.types.is_string_dtype(frame["participant"])
-    assert frame.attrs["source"] == str(path)
-    assert frame.attrs["rt_screen"] == RTScreen()
-    assert log_warnings(frame) == []
+    log = load_log(path, TASK)
+    assert log.source == str(path) and log.task is TASK
+    assert log.screen == RTScreen()
+    assert log.warnings == ()
 
 
 def test_participant_ids_stay_text_and_session_defaults_to_1(tmp_path):
     lines = ["participant,block,trial,stimulus,response,rt",
              "007,1,1,a,a,0.5", "007,1,2,b,a,0.5"]
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     assert list(frame["participant"]) == ["007", "007"]
     assert list(frame["session"]) == [1, 1]
 
@@ -75,9 +78,9 @@ def test_participant_ids_stay_text_and_session_defaults_to_1(tmp_path):
 def test_tsv_and_detected_delimiter(tmp_path):
     tsv = write(tmp_path, [line.replace(",", "\t") for line in GOOD], "log.tsv")
     txt = write(tmp_path, [line.replace(",", ";") for line in GOOD], "log.txt")
-    reference = load_log(write(tmp_path, GOOD), TASK)
+    reference = load_log(write(tmp_path, GOOD), TASK).frame
     for path in (tsv, txt):
-        pd.testing.assert_frame_equal(load_log(path, TASK), reference)
+        pd.testing.assert_frame_equal(load_log(path, TASK).frame, reference)
 
 
 def test_quoted_fields_and_blank_lines_keep_file_line_numbers(tmp_path):
@@ -92,12 +95,12 @@ def test_quoted_fields_and_blank_lines_keep_file_line_numbers(tmp_path):
 
 
 def test_round_trip_through_csv(tmp_path):
-    frame = load_log(write(tmp_path, GOOD), TASK)
+    log = load_log(write(tmp_path, GOOD), TASK)
+    frame = log.frame
     path = tmp_path / "again.csv"
     frame[["participant", "session", "block", "trial", "stimulus", "response", "rt"]].to_csv(
         path, index=False)
-    again = load_log(path, TASK)
-    again.attrs, frame.attrs = {}, {}
+    again = load_log(path, TASK).frame
     pd.testing.assert_frame_equal(again, frame)
 
 
@@ -110,7 +113,8 @@ def test_validate_log_in_memory_with_typed_columns():
     (problem,) = err.value.problems
     assert (problem.path, problem.line, problem.column) == ("sim", 4, "response")
     df.loc[2, "response"] = "c"
-    frame = validate_log(df, TASK, source="sim")
+    log = validate_log(df, TASK, source="sim")
+    frame = log.frame
     assert list(frame["participant"]) == ["3", "3", "4"]
     assert list(frame["response_idx"]) == [0, -1, 2]
 
@@ -119,8 +123,9 @@ def test_column_map_and_milliseconds(tmp_path):
     lines = ["subj,blk,trial,stimulus,guess,RT_ms",
              "p01,1,1,a,b,520", "p01,1,2,b,b,1450"]
     path = write(tmp_path, lines)
-    frame = load_log(path, TASK, columns={"participant": "subj", "block": "blk",
+    log = load_log(path, TASK, columns={"participant": "subj", "block": "blk",
                                           "response": "guess", "rt": "RT_ms"}, rt_unit="ms")
+    frame = log.frame
     np.testing.assert_allclose(frame["rt"], [0.52, 1.45])  # 1 s = 1000 ms (SI)
     problems = problems_of(path, columns={"participant": "subj", "block": "blk",
                                           "response": "answer"})
@@ -130,8 +135,9 @@ def test_column_map_and_milliseconds(tmp_path):
 
 def test_seconds_that_look_like_milliseconds_are_warned(tmp_path):
     lines = ["participant,block,trial,stimulus,response,rt", "p01,1,1,a,b,520"]
-    frame = load_log(write(tmp_path, lines), TASK)
-    assert any("rt_unit='ms'" in w for w in log_warnings(frame))
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
+    assert any("rt_unit='ms'" in w for w in log.warnings)
 
 
 def test_bad_options_are_usage_errors(tmp_path):
@@ -202,7 +208,8 @@ def test_non_increasing_trial_in_file_order(tmp_path):
 def test_order_is_checked_within_participant_and_session_only(tmp_path):
     lines = [HEADER, "p01,1,1,1,a,a,0.5", "p02,1,1,1,a,a,0.5", "p01,1,1,2,a,a,0.5",
              "p01,2,1,1,b,b,0.5", "p01,2,1,2,b,b,0.5"]
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     assert list(zip(frame["participant"], frame["session"], frame["trial"])) == [
         ("p01", 1, 1), ("p01", 1, 2), ("p01", 2, 1), ("p01", 2, 2), ("p02", 1, 1)]
 
@@ -258,12 +265,13 @@ def test_mixed_case_and_stray_spaces_are_reported(tmp_path):
 def test_fix_labels_fixes_and_records(tmp_path):
     lines = [HEADER, "p01,1,1,1,A,a,0.5", "p01,1,1,2, b,a,0.5", "p02,1,1,1,c, C ,0.5",
              "p02,1,1,2,c,a,0.5"]
-    frame = load_log(write(tmp_path, lines), TASK, fix_labels=True)
+    log = load_log(write(tmp_path, lines), TASK, fix_labels=True)
+    frame = log.frame
     assert list(frame["stimulus"]) == ["a", "b", "c", "c"]
     assert list(frame["response"]) == ["a", "a", "c", "a"]
-    warnings = log_warnings(frame)
+    warnings = log.warnings
     assert sum("read as the task's symbol" in w for w in warnings) == 3
-    summary = log_summary(frame)
+    summary = log_summary(log)
     assert list(summary["labels_fixed"]) == [2, 1, 3]
 
 
@@ -302,11 +310,12 @@ def test_parquet_without_pyarrow_names_the_package(tmp_path, monkeypatch):
 
 def test_rt_on_missed_guess_is_a_warning(tmp_path):
     lines = GOOD[:3] + ["p01,1,1,2,c,,0.7"]
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     row = frame[frame["missed"]].iloc[0]
     assert row["rt"] == 0.7 and row["rt_flag"] == "missed" and not row["rt_ok"]
-    assert any("missed guess" in w and "line 4" in w for w in log_warnings(frame))
-    assert log_summary(frame)["missed_with_rt"].iloc[-1] == 1
+    assert any("missed guess" in w and "line 4" in w for w in log.warnings)
+    assert log_summary(log)["missed_with_rt"].iloc[-1] == 1
 
 
 @pytest.mark.parametrize("drop_rt", [True, False])
@@ -314,18 +323,20 @@ def test_guess_only_log(tmp_path, drop_rt):
     lines = [line.rsplit(",", 1)[0] + ("" if drop_rt else ",") for line in GOOD]
     if not drop_rt:
         lines[0] = HEADER
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     assert frame["rt"].isna().all() and not frame["rt_ok"].any()
     assert set(frame["rt_flag"]) == {"missed", "no-rt"}
-    assert any("RT analyses will be skipped" in w for w in log_warnings(frame))
+    assert any("RT analyses will be skipped" in w for w in log.warnings)
 
 
 def test_identifying_columns_are_dropped_with_a_warning(tmp_path):
     lines = [HEADER + ",FirstName,email,date_of_birth,condition",
              "p01,1,1,1,a,a,0.5,Ann,ann@example.org,2001-01-01,x"]
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     assert not {"FirstName", "email", "date_of_birth", "condition"} & set(frame.columns)
-    (personal,) = [w for w in log_warnings(frame) if "personal data" in w]
+    (personal,) = [w for w in log.warnings if "personal data" in w]
     assert "'FirstName'" in personal and "'email'" in personal and "'date_of_birth'" in personal
     assert "condition" not in personal
 
@@ -340,12 +351,13 @@ def test_default_screen_limits():
 def test_floor_and_ceiling_flag_without_removing(tmp_path):
     lines = [HEADER] + [f"p01,1,1,{i},a,b,{rt}" for i, rt in
                         enumerate(["0.08", "0.15", "0.9", "3.0", "4.2", "0"], start=1)]
-    frame = load_log(write(tmp_path, lines), TASK)
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
     assert list(frame["rt_flag"]) == ["fast", "", "", "", "slow", "fast"]
-    loose = load_log(write(tmp_path, lines), TASK, screen=RTScreen(floor=0.05, ceiling=5.0))
+    loose = load_log(write(tmp_path, lines), TASK, screen=RTScreen(floor=0.05, ceiling=5.0)).frame
     assert list(loose["rt_flag"]) == ["", "", "", "", "", "fast"]
     assert len(frame) == len(loose) == 6
-    summary = log_summary(frame, totals=False)
+    summary = log_summary(log, totals=False)
     assert summary.loc[0, ["rt_fast", "rt_slow", "rt_usable"]].tolist() == [2, 1, 3]
 
 
@@ -360,10 +372,11 @@ def test_mad_rule_matches_scipy_reference():
     rng = np.random.default_rng(7)
     rt = np.exp(rng.normal(-0.6, 0.35, size=200))
     rt[[3, 50]] = [2.9, 0.16]  # inside floor/ceiling, far in log RT
-    frame = validate_log(pd.DataFrame({
+    log = validate_log(pd.DataFrame({
         "participant": ["p01"] * 100 + ["p02"] * 100, "block": 1,
         "trial": np.tile(np.arange(1, 101), 2), "stimulus": "a", "response": "b", "rt": rt}),
         TASK, screen=RTScreen(floor=0.15, ceiling=3.0, mad_k=3))
+    frame = log.frame
     expected = []
     for part in ("p01", "p02"):
         x = np.log(rt[(frame["participant"] == part).to_numpy()])
@@ -372,26 +385,28 @@ def test_mad_rule_matches_scipy_reference():
         expected += list(np.abs(x - np.median(x)) > 3 * mad)
     assert (frame["rt_flag"] == "mad").tolist() == expected
     assert frame.loc[3, "rt_flag"] == "mad" and frame.loc[50, "rt_flag"] == "mad"
-    assert log_summary(frame)["rt_mad"].iloc[-1] == sum(expected)
+    assert log_summary(log)["rt_mad"].iloc[-1] == sum(expected)
 
 
 def test_mad_of_zero_flags_nothing_and_warns():
-    frame = validate_log(pd.DataFrame({
+    log = validate_log(pd.DataFrame({
         "participant": "p01", "block": 1, "trial": [1, 2, 3, 4], "stimulus": "a",
         "response": "a", "rt": [0.5, 0.5, 0.5, 2.0]}), TASK, screen=RTScreen(mad_k=3))
+    frame = log.frame
     assert (frame["rt_flag"] == "").all()
-    assert any("MAD of their 4 log RT(s) is 0" in w for w in frame.attrs["warnings"])
-    assert log_warnings(screen_rt(frame, RTScreen())) == []  # rescreening replaces it
+    assert any("MAD of their 4 log RT(s) is 0" in w for w in log.warnings)
+    assert screen_rt(log, RTScreen()).warnings == ()  # rescreening replaces it
 
 
 def test_rescreening_replaces_flags():
-    frame = validate_log(pd.DataFrame({
+    log = validate_log(pd.DataFrame({
         "participant": "p01", "block": 1, "trial": [1, 2], "stimulus": "a",
         "response": "a", "rt": [0.12, 0.5]}), TASK)
+    frame = log.frame
     assert list(frame["rt_flag"]) == ["fast", ""]
-    again = screen_rt(frame, RTScreen(floor=0.1))
-    assert list(again["rt_flag"]) == ["", ""] and again.attrs["rt_screen"].floor == 0.1
-    assert log_warnings(again) == log_warnings(frame) == []
+    again = screen_rt(log, RTScreen(floor=0.1))
+    assert list(again.frame["rt_flag"]) == ["", ""] and again.screen.floor == 0.1
+    assert again.warnings == log.warnings == ()
     assert list(frame["rt_flag"]) == ["fast", ""]
 
 
@@ -409,20 +424,21 @@ rts = st.lists(st.one_of(st.none(), st.floats(0, 10)), min_size=1, max_size=40)
 @given(rts, st.floats(0, 1), st.floats(1.2, 8), st.sampled_from([None, 2.5, 3.0]))
 def test_screening_properties(rt, floor, ceiling, mad_k):
     n = len(rt)
-    frame = validate_log(pd.DataFrame({
+    log = validate_log(pd.DataFrame({
         "participant": ["p01", "p02"] * (n // 2) + ["p01"] * (n % 2), "block": 1,
         "trial": np.arange(1, n + 1), "stimulus": "a",
         "response": ["" if i % 5 == 4 else "b" for i in range(n)],
         "rt": [np.nan if r is None else r for r in rt]}), TASK,
         screen=RTScreen(floor=floor, ceiling=ceiling, mad_k=mad_k))
+    frame = log.frame
     assert len(frame) == n  # screening never removes a trial
     assert set(frame["rt_flag"]) <= set(RT_FLAGS)
     assert (frame["rt_ok"] == (frame["rt_flag"] == "")).all()
     ok = frame[frame["rt_ok"]]
     assert ((ok["rt"] >= floor) & (ok["rt"] <= ceiling) & (ok["rt"] > 0)).all()
-    stricter = screen_rt(frame, RTScreen(floor=min(floor + 0.1, 1.0), ceiling=ceiling - 0.01))
+    stricter = screen_rt(log, RTScreen(floor=min(floor + 0.1, 1.0), ceiling=ceiling - 0.01)).frame
     # without the MAD rule, a stricter screen never makes a trial usable again
-    assert not (stricter["rt_ok"] & ~screen_rt(frame, RTScreen(floor, ceiling))["rt_ok"]).any()
+    assert not (stricter["rt_ok"] & ~screen_rt(log, RTScreen(floor, ceiling)).frame["rt_ok"]).any()
 
 
 # --- summary -----------------------------------------------------------------
@@ -463,7 +479,7 @@ def test_map_onto_another_canonical_column_is_refused() -> None:
                           "response": ["b"], "guess": ["a"]})
     with pytest.raises(UsageError, match="'response' from 'stimulus'"):
         validate_log(frame, task, columns={"response": "stimulus"})
-    swapped = validate_log(frame, task, columns={"response": "stimulus", "stimulus": "guess"})
+    swapped = validate_log(frame, task, columns={"response": "stimulus", "stimulus": "guess"}).frame
     assert swapped[["stimulus", "response"]].values.tolist() == [["a", "a"]]
 
 
@@ -473,8 +489,9 @@ def test_seconds_read_as_milliseconds_warns() -> None:
     frame = pd.DataFrame({"participant": ["p01"] * 3, "block": [1] * 3, "trial": [1, 2, 3],
                           "stimulus": ["a", "b", "a"], "response": ["b", "a", "a"],
                           "rt": [0.41, 0.52, 0.38]})
-    out = validate_log(frame, task, rt_unit="ms")
-    assert any("if the RTs are in seconds" in w for w in out.attrs["warnings"])
+    log = validate_log(frame, task, rt_unit="ms")
+    out = log.frame
+    assert any("if the RTs are in seconds" in w for w in log.warnings)
 
 
 def test_missing_parquet_is_no_such_file(tmp_path) -> None:
@@ -494,7 +511,7 @@ def test_parquet_log_equals_the_csv_log(tmp_path) -> None:
     raw = pd.read_csv(csv_path, keep_default_na=False, na_values={"rt": [""]}).head(1200)
     raw.to_csv(tmp_path / "log.csv", index=False)
     raw.to_parquet(tmp_path / "log.parquet")
-    from_csv = load_log(tmp_path / "log.csv", task)
-    from_parquet = load_log(tmp_path / "log.parquet", task)
+    from_csv = load_log(tmp_path / "log.csv", task).frame
+    from_parquet = load_log(tmp_path / "log.parquet", task).frame
     pd.testing.assert_frame_equal(from_csv.reset_index(drop=True), from_parquet.reset_index(drop=True),
                                   check_dtype=False)

@@ -95,7 +95,7 @@ def test_evidence_and_predictions_equal_the_enumerated_sum(m, D, alpha, beta):
     obs = observations(x, D)
     assert model.log_evidence(x, m) == pytest.approx(
         logsumexp(tree_log_scores(obs, trees, m, alpha, b)), abs=1e-9)
-    pred = model.predict_proba(x, m)
+    pred = model.next_proba(x, m)
     for t in range(D, len(x)):
         before = observations(x, D, stop=t)
         z = logsumexp(tree_log_scores(before, trees, m, alpha, b))
@@ -176,7 +176,7 @@ def test_leaf_prob_one_is_the_root_estimator(m, D, seed, n):
 def test_rows_sum_to_one_and_prequential_identity(m, D, seed, n, alpha, beta):
     x = np.random.default_rng(seed).integers(0, m, n)
     model = TreeMixture(max_depth=D, alpha=alpha, leaf_prob=beta)
-    p = model.predict_proba(x, m)
+    p = model.next_proba(x, m)
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-12)
     start = min(D, n) if n else 0
     want = float(np.log(p[np.arange(start, n), x[start:]]).sum())
@@ -205,7 +205,7 @@ def test_stable_on_long_sequences_with_many_symbols():
     x = rng.integers(0, 8, 100_000)
     x[1::3] = (x[0:-1:3] + 1) % 8  # some structure, so deep nodes are revisited
     model = TreeMixture(max_depth=10)
-    logp = model.log_predict_proba(x, 8)
+    logp = model.log_next_proba(x, 8)
     assert np.isfinite(logp).all()
     np.testing.assert_allclose(np.exp(logp).sum(axis=1), 1.0, atol=1e-9)
     ev = model.log_evidence(x, 8)

@@ -34,7 +34,7 @@ def test_same_seed_same_frames_and_canonical_format(lantern):
                                  "response", "rt", "onset", "reveal_onset"]
     assert sorted(log.participant.unique()) == ["p01", "p02", "p03", "p04", "p05"]
     assert len(log) == 5 * 2 * lantern.block_length
-    checked = validate_log(log, lantern)  # the canonical validator accepts it as it is
+    checked = validate_log(log, lantern).frame  # the canonical validator accepts it as it is
     missed = log.response == ""
     assert (checked["missed"].to_numpy() == missed.to_numpy()).all()
     assert log.loc[missed, "rt"].isna().all() and log.loc[~missed, "rt"].notna().all()
@@ -140,7 +140,7 @@ def test_demo_data_regenerates_exactly_and_loads():
     assert set(frame.group) == {"rested", "sleep-restricted"}
     assert (frame.response == "").sum() == (log.response == "").sum()
     assert frame.rt.isna().sum() == log.rt.isna().sum()
-    loaded = load_log(ROOT / "src/foretell/data/demo_log.csv", task)
+    loaded = load_log(ROOT / "src/foretell/data/demo_log.csv", task).frame
     assert loaded["missed"].sum() == (log.response == "").sum()
     assert list(demo_truth().participant) == list(truth.participant)
 

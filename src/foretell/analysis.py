@@ -12,7 +12,7 @@ import pandas as pd
 from . import compare
 from .contexts import context_agreement, context_report
 from .fitting import fit_participants
-from .logs import validate_log
+from .logs import ValidatedLog, load_log, validate_log
 from .models import ModelSpec
 from .tasks import Task, load_task
 
@@ -52,7 +52,7 @@ class FitResult:
                 "context_agreement": self.context_agreement, "trials": self.predictions}
 
 
-def fit(log: pd.DataFrame | str | Path, task: Task | str | Path,
+def fit(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path,
         models: Sequence[str | ModelSpec] | None = None, *, free: Iterable[str] = (),
         fixed: Mapping[str, float] | None = None, n_starts: int = 3, seed: int = 0,
         n_jobs: int = 1, progress: bool | None = None, criterion: str = "bic",
@@ -72,12 +72,11 @@ def fit(log: pd.DataFrame | str | Path, task: Task | str | Path,
     free = (free,) if isinstance(free, str) else tuple(free)
     if not isinstance(task, Task):
         task = load_task(task)
-    if not isinstance(log, pd.DataFrame):
-        from .logs import load_log
-
-        log = load_log(log, task)
-    elif "stimulus_idx" not in log.columns:
+    if isinstance(log, pd.DataFrame):
         log = validate_log(log, task)
+    elif not isinstance(log, ValidatedLog):
+        log = load_log(log, task)
+    log = log.frame
     tables = fit_participants(log, task, models, free=free, fixed=fixed, n_starts=n_starts,
                               seed=seed, n_jobs=n_jobs, progress=progress)
     winners = compare.winners(tables.fits, tables.blocks)

@@ -141,8 +141,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
     _, log = _load(args)
     print(log_summary(log).to_string(index=False, na_rep=""))
-    print(str(log.attrs["rt_screen"]))
-    for warning in log.attrs.get("warnings", []):
+    print(str(log.screen))
+    for warning in log.warnings:
         print(f"warning: {warning}", file=sys.stderr)
     return 0
 

@@ -43,7 +43,7 @@ import pandas as pd
 from scipy import integrate, stats
 from scipy.special import digamma, gammainc, gammaln, logsumexp, softmax, xlogy
 
-from .logs import ALL  # the label of the comparison over everyone (group) or the whole session (block)
+from .labels import ALL, block_label
 
 CLEAR_DELTA_BIC = 2.0
 """A BIC difference of at least 2 is 'positive' evidence (Raftery, 1995)."""
@@ -338,14 +338,6 @@ def _group_labels(table: pd.DataFrame) -> pd.Series:
     if "group" not in table.columns:
         return pd.Series(pd.NA, index=table.index, dtype="string")
     return table["group"].astype("string")
-
-
-def block_label(block) -> str:
-    """Return a block (or session) number as a string: 3 and 3.0 give "3"; strings pass through."""
-    if isinstance(block, str):
-        return block
-    value = float(block)
-    return str(int(value)) if value.is_integer() else str(block)
 
 
 def _tidy(table: pd.DataFrame, evidence: pd.Series, criterion: str, by: list[str],

@@ -23,7 +23,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from foretell.compare import ALL, block_label
+from foretell.labels import ALL, block_label, parse_context
 from foretell.learners import TreeMixture
 from foretell.tasks import Task
 
@@ -102,7 +102,7 @@ def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
 
 
 def _parse(label: str, task: Task) -> tuple[int, ...]:
-    return () if label == "*" else tuple(task.index_of(s) for s in label.split("-"))
+    return parse_context(label, task.symbols)
 
 
 def _status(context: tuple[int, ...], visited: set[tuple[int, ...]],

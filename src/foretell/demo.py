@@ -18,7 +18,7 @@ from pathlib import Path
 import pandas as pd
 
 from foretell.compare import default_families
-from foretell.logs import ALL
+from foretell.labels import ALL
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.tasks import Task, load_task, shipped_tasks
 

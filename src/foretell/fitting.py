@@ -36,7 +36,8 @@ from sklearn.model_selection import LeaveOneGroupOut
 
 from foretell.choice import choice_terms
 from foretell.errors import LogError, UsageError
-from foretell.models import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS, ModelSpec, model_specs
+from foretell.models import ModelSpec, model_specs
+from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
 
 _LOG_TINY = math.log(1e-300)  # floor of log predictions (zero probabilities), as in foretell.choice
@@ -47,10 +48,6 @@ _PGTOL = 1e-3  # projected gradient (nats per optimiser unit) below which a fit 
 _RESTARTS = 3  # L-BFGS-B restarts from its own end point when it stops short
 _MAX_COND = 1e10  # Hessians worse conditioned than this give NaN correlations
 _PARAM_ORDER = CHOICE_PARAMS + LEARNER_PARAMS
-_VALID = {  # domain of a parameter held fixed: (low, high, high included)
-    "inv_temp": (0.0, math.inf, False), "lapse": (0.0, 1.0, False),
-    "leak": (0.0, 1.0, False), "alpha": (0.0, math.inf, False),
-}
 _LOG_COLUMNS = ("participant", "session", "block", "trial", "stimulus", "response")
 
 
@@ -78,11 +75,11 @@ class FitOptions:
         """Return validated options from the keyword arguments of the public functions."""
         fixed = dict(fixed or {})
         for name, value in fixed.items():
-            if name not in _VALID:
-                raise UsageError(f"cannot fix {name!r}: fixable parameters are {', '.join(_VALID)}")
-            low, high, _ = _VALID[name]
-            if not (low <= float(value) < high):
-                raise UsageError(f"fixed {name} must lie in [{low}, {high}); got {value}")
+            if name not in PARAMS:
+                raise UsageError(f"cannot fix {name!r}: fixable parameters are {', '.join(PARAMS)}")
+            PARAMS[name].check(value, "fixed")
+            if name == "lapse" and float(value) >= 1.0:
+                raise UsageError("fixed lapse must be below 1: at 1 every guess ignores the learner")
         if int(n_starts) < 1:
             raise UsageError(f"n_starts must be at least 1; got {n_starts}")
         if warmup is not None and int(warmup) < 0:
@@ -214,7 +211,7 @@ class _Likelihood:
             m = len(self.trials.symbols)
             if len(self.cache) > 64:  # free learner parameters: only recent values are reused
                 self.cache.clear()
-            log_pred = np.concatenate([learner.log_predict_proba(x, m) for x in self.trials.sessions])
+            log_pred = np.concatenate([learner.log_next_proba(x, m) for x in self.trials.sessions])
             self.cache[key] = np.maximum(log_pred, _LOG_TINY)
         return self.cache[key]
 

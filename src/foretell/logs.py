@@ -6,7 +6,7 @@ import csv
 import io
 import math
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Mapping
 
@@ -15,6 +15,7 @@ import pandas as pd
 from pandas.api.types import is_bool_dtype, is_numeric_dtype
 
 from .errors import LogError, Problem, UsageError
+from .labels import ALL
 
 if TYPE_CHECKING:
     from .tasks import Task
@@ -25,7 +26,6 @@ REQUIRED = ("participant", "block", "trial", "stimulus", "response")
 DERIVED = ("stimulus_idx", "response_idx", "missed", "rt_ok", "rt_flag")
 RT_FLAGS = ("", "missed", "no-rt", "fast", "slow", "mad")
 RT_UNITS = {"s": 1.0, "ms": 1e-3}
-ALL = "all"  # the label of "everyone" / "the whole session" in output tables
 
 _DELIMITER_NAMES = {",": "commas", "\t": "tabs", ";": "semicolons", "|": "vertical bars"}
 _DELIMITER_OF_SUFFIX = {".csv": ",", ".tsv": "\t", ".tab": "\t"}
@@ -76,10 +76,49 @@ class RTScreen:
         return f"RT screen: floor {self.floor:g} s, ceiling {self.ceiling:g} s, MAD rule {mad}"
 
 
+@dataclass(frozen=True, eq=False)
+class ValidatedLog:
+    """A response log that passed validation against its task: the trial table and what is known of it.
+
+    ``frame``: one row per trial, the canonical columns present in the log
+    (session always; group, onset, reveal_onset only when given) plus
+    ``stimulus_idx``, ``response_idx`` (-1 = missed), ``missed``, ``rt_ok`` and
+    ``rt_flag`` (one of :data:`RT_FLAGS`); rt in seconds; rows sorted by
+    participant, session, block and trial. ``task``: the task it was validated
+    against; ``source``: the file (or "<frame>"); ``rt_unit``: the unit the
+    log's rt column was read in; ``screen``: the RT screen applied;
+    ``read_warnings``: what reading found (personal-data columns, label
+    fixes, unit doubts, ...); ``screen_warnings``: what screening found;
+    ``labels_fixed``: participant -> number of rows whose labels were fixed.
+    """
+
+    frame: pd.DataFrame
+    task: Task
+    source: str
+    rt_unit: str
+    screen: RTScreen
+    read_warnings: tuple[str, ...] = ()
+    screen_warnings: tuple[str, ...] = ()
+    labels_fixed: Mapping[str, int] = field(default_factory=dict)
+
+    @property
+    def warnings(self) -> tuple[str, ...]:
+        """Return every warning: reading first, then screening."""
+        return self.read_warnings + self.screen_warnings
+
+    @property
+    def participants(self) -> list[str]:
+        """Return the participant ids in sorted order."""
+        return sorted(self.frame["participant"].unique().tolist())
+
+    def __len__(self) -> int:
+        return len(self.frame)
+
+
 def load_log(path: str | Path, task: Task, columns: Mapping[str, str] | None = None,
              rt_unit: str = "s", fix_labels: bool = False, *,
-             screen: RTScreen = RTScreen()) -> pd.DataFrame:
-    """Return the validated, screened trial table of the response log at ``path``.
+             screen: RTScreen = RTScreen()) -> ValidatedLog:
+    """Return the validated, screened log (:class:`ValidatedLog`) of the response log at ``path``.
 
     CSV (``.csv``), TSV (``.tsv``, ``.tab``) or, for any other extension, text
     whose delimiter (comma, tab, semicolon, vertical bar) is detected; Parquet
@@ -94,8 +133,8 @@ def load_log(path: str | Path, task: Task, columns: Mapping[str, str] | None = N
 
 def validate_log(frame: pd.DataFrame, task: Task, source: str = "<frame>",
                  columns: Mapping[str, str] | None = None, rt_unit: str = "s",
-                 fix_labels: bool = False, *, screen: RTScreen = RTScreen()) -> pd.DataFrame:
-    """Return the validated, screened trial table of an in-memory log ``frame``.
+                 fix_labels: bool = False, *, screen: RTScreen = RTScreen()) -> ValidatedLog:
+    """Return the validated, screened log (:class:`ValidatedLog`) of an in-memory log ``frame``.
 
     ``columns`` maps canonical names (:data:`CANONICAL`) to the lab's own
     column names, e.g. ``{"response": "guess", "rt": "RT_ms"}``; problems name
@@ -111,20 +150,14 @@ def validate_log(frame: pd.DataFrame, task: Task, source: str = "<frame>",
     drop is out of order) and blocks must not decrease. An empty response is a
     missed guess (kept, flagged); an empty or absent rt is no RT.
 
-    The result has the canonical columns present in the log (session always;
-    group, onset, reveal_onset only when given) plus ``stimulus_idx``,
-    ``response_idx`` (-1 = missed), ``missed``, ``rt_ok`` and ``rt_flag`` (one
-    of :data:`RT_FLAGS`), rt in seconds, rows sorted (stably) by participant,
-    session and trial. ``attrs`` holds "source", "rt_unit", "rt_screen",
-    "labels_fixed" (participant -> rows fixed), "warnings" (all of them, see
-    :func:`log_warnings`) and "read_warnings" (those not from the RT screen).
-    Other columns are not carried over.
+    The result's ``frame`` is described in :class:`ValidatedLog`; other
+    columns of the log are not carried over.
     """
     lines = np.arange(len(frame)) + 2
     return _validate(frame, lines, task, source, columns, rt_unit, fix_labels, screen)
 
 
-def screen_rt(frame: pd.DataFrame, screen: RTScreen = RTScreen()) -> pd.DataFrame:
+def screen_rt(log: ValidatedLog, screen: RTScreen = RTScreen()) -> ValidatedLog:
     """Return a copy of a validated log with ``rt_ok`` and ``rt_flag`` set by ``screen``.
 
     Flags, first match wins: "missed" (no guess; any RT ignored), "no-rt",
@@ -132,9 +165,9 @@ def screen_rt(frame: pd.DataFrame, screen: RTScreen = RTScreen()) -> pd.DataFram
     per-participant log-RT rule, over the RTs that passed floor and ceiling).
     "" means usable: ``rt_ok`` is ``rt_flag == ""``. No row is ever removed.
     """
-    missing = [c for c in ("participant", "rt", "missed") if c not in frame.columns]
-    if missing:
-        raise UsageError(f"screen_rt needs a validated log; missing columns: {', '.join(missing)}")
+    if not isinstance(log, ValidatedLog):
+        raise UsageError("screen_rt needs a validated log: use load_log or validate_log first")
+    frame = log.frame
     rt = frame["rt"].to_numpy(dtype=float)
     missed = frame["missed"].to_numpy(dtype=bool)
     has_rt = ~missed & ~np.isnan(rt)
@@ -155,17 +188,10 @@ def screen_rt(frame: pd.DataFrame, screen: RTScreen = RTScreen()) -> pd.DataFram
     out = frame.copy()
     out["rt_ok"] = flag == ""
     out["rt_flag"] = pd.Series(flag, index=out.index, dtype="str")
-    out.attrs["rt_screen"] = screen
-    out.attrs["warnings"] = tuple(frame.attrs.get("read_warnings", ())) + tuple(warnings)
-    return out
+    return replace(log, frame=out, screen=screen, screen_warnings=tuple(warnings))
 
 
-def log_warnings(frame: pd.DataFrame) -> list[str]:
-    """Return the warnings of a validated log: reading, labels fixed, RT screening."""
-    return list(frame.attrs.get("warnings", ()))
-
-
-def log_summary(frame: pd.DataFrame, totals: bool = True) -> pd.DataFrame:
+def log_summary(log: ValidatedLog, totals: bool = True) -> pd.DataFrame:
     """Return the validation summary of a validated log, one row per participant.
 
     Columns: participant, group (NA without a group column), sessions, blocks
@@ -174,6 +200,7 @@ def log_summary(frame: pd.DataFrame, totals: bool = True) -> pd.DataFrame:
     flagged by the screen, see :func:`screen_rt`), rt_usable, labels_fixed.
     With ``totals``, a last row with participant "all" sums every count.
     """
+    frame = log.frame
     part = frame["participant"]
     flag = frame["rt_flag"]
 
@@ -182,7 +209,7 @@ def log_summary(frame: pd.DataFrame, totals: bool = True) -> pd.DataFrame:
 
     group = (frame.groupby("participant")["group"].first() if "group" in frame.columns
              else pd.Series(pd.NA, index=pd.Index(sorted(part.unique())), dtype="str"))
-    fixed = frame.attrs.get("labels_fixed", {})
+    fixed = log.labels_fixed
     table = pd.DataFrame({
         "group": group,
         "sessions": frame.groupby("participant")["session"].nunique(),
@@ -492,8 +519,8 @@ def _looks_identifying(name: str) -> bool:
 
 def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
               columns: Mapping[str, str] | None, rt_unit: str, fix_labels: bool,
-              screen: RTScreen) -> pd.DataFrame:
-    """Return the canonical, screened frame of ``cells``, or raise LogError with every problem."""
+              screen: RTScreen) -> ValidatedLog:
+    """Return the canonical, screened log of ``cells``, or raise LogError with every problem."""
     if rt_unit not in RT_UNITS:
         raise UsageError(f"rt_unit must be one of {', '.join(RT_UNITS)}, got {rt_unit!r}")
     check = _Checker(source, lines)
@@ -562,9 +589,9 @@ def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
                     pd.Series(fixed_rows).groupby(part).sum().items() if n}
     frame = frame.iloc[np.lexsort((frame["trial"], frame["session"], part))]
     frame = frame.reset_index(drop=True)
-    frame.attrs.update(source=source, rt_unit=rt_unit, labels_fixed=labels_fixed,
-                       read_warnings=tuple(check.warnings))
-    return screen_rt(frame, screen)
+    log = ValidatedLog(frame, task, source, rt_unit, screen, tuple(check.warnings),
+                       labels_fixed=labels_fixed)
+    return screen_rt(log, screen)
 
 
 def _check_order(check: _Checker, part: np.ndarray, session: np.ndarray,

@@ -10,34 +10,8 @@ from typing import Any
 
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source, TaskCounting, TreeMixture
+from foretell.params import CHOICE_PARAMS, DEFAULT_ALPHA, LEARNER_PARAMS, PARAMS, Param
 from foretell.tasks import Task
-
-CHOICE_PARAMS = ("inv_temp", "lapse")
-LEARNER_PARAMS = ("leak", "alpha")
-
-
-@dataclass(frozen=True)
-class Param:
-    """A fitted parameter: its bounds, the optimiser's first start and its scale.
-
-    ``log_scale`` parameters are optimised as log(value) (inv_temp and lapse
-    span orders of magnitude); the others on their own scale.
-    """
-
-    name: str
-    low: float
-    high: float
-    start: float
-    log_scale: bool
-
-
-PARAMS: dict[str, Param] = {
-    "inv_temp": Param("inv_temp", 0.01, 50.0, 1.0, True),
-    "lapse": Param("lapse", 1e-4, 0.5, 0.05, True),
-    "leak": Param("leak", 0.0, 0.95, 0.1, False),
-    "alpha": Param("alpha", 0.01, 10.0, 0.5, True),
-}
-
 
 @dataclass(frozen=True)
 class ModelSpec:
@@ -99,7 +73,7 @@ def parse_model(model_id: str, task: Task, free: Iterable[str] = ()) -> ModelSpe
         depth, factory, tunable, defaults = task.max_depth, partial(Source, task), (), {}
     else:
         raise UsageError(f"unknown model {model_id!r}; expected one of {_FORMS}")
-    defaults = {"alpha": PARAMS["alpha"].start, **defaults} if "alpha" in tunable else defaults
+    defaults = {"alpha": DEFAULT_ALPHA, **defaults} if "alpha" in tunable else defaults
     learner_free = tuple(p for p in LEARNER_PARAMS if p in extra and p in tunable)
     return ModelSpec(model_id, depth, CHOICE_PARAMS + learner_free, tunable,
                      tuple(sorted(defaults.items())), factory)

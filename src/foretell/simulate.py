@@ -19,6 +19,7 @@ import pandas as pd
 
 from foretell.choice import choice_proba
 from foretell.errors import UsageError
+from foretell.params import PARAMS
 from foretell.learners.base import Learner, check_hyper
 from foretell.models import parse_model
 from foretell.tasks import Task
@@ -96,7 +97,7 @@ class ParticipantSpec:
         if self.leak[1] > 0 and not self.model.endswith("-leak"):
             raise UsageError(f"ParticipantSpec {self.model!r}: a leak range {self.leak} needs a "
                              "count-K-leak model")
-        check_hyper("ParticipantSpec alpha", self.alpha, 0.0, np.inf, low_open=True, high_open=True)
+        PARAMS["alpha"].check(self.alpha, "ParticipantSpec")
         check_hyper("ParticipantSpec miss_rate", self.miss_rate, 0.0, 1.0, high_open=True)
 
     def draw(self, task: Task, rng: np.random.Generator) -> tuple[Learner, dict[str, float]]:
@@ -130,13 +131,13 @@ def simulate_participant(task: Task, learner: Learner, inv_temp: float, lapse: f
     """
     if isinstance(n_trials, bool) or not isinstance(n_trials, (int, np.integer)) or n_trials < 1:
         raise UsageError(f"n_trials must be a positive whole number, got {n_trials!r}")
-    check_hyper("inv_temp", inv_temp, 0.0, np.inf, high_open=True)
-    check_hyper("lapse", lapse, 0.0, 1.0)
+    PARAMS["inv_temp"].check(inv_temp)
+    PARAMS["lapse"].check(lapse)
     check_hyper("miss_rate", miss_rate, 0.0, 1.0, high_open=True)
     block_length = _block_length(task, block_length, n_trials)
     m = task.n_symbols
     x = task.sample(int(n_trials), seed=rng)
-    pred = learner.predict_proba(x, m)
+    pred = learner.next_proba(x, m)
     guess_p = choice_proba(pred, inv_temp, lapse)
     u = rng.random(n_trials)
     response = np.minimum((np.cumsum(guess_p, axis=1) < u[:, None]).sum(axis=1), m - 1)

@@ -15,6 +15,7 @@ from scipy.sparse.csgraph import connected_components
 from scipy.sparse.linalg import spsolve
 
 from .errors import Problem, TaskError
+from .labels import context_label, symbol_label_problem
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -114,7 +115,7 @@ class Task:
 
     def context_label(self, context: Sequence[int]) -> str:
         """Return a context as labels joined by '-', oldest first; the root is '*'."""
-        return "-".join(self.decode(context)) if len(context) else "*"
+        return context_label(self.symbols, context)
 
     # -- the source ---------------------------------------------------------------
     def context_of(self, past: Sequence[int] | Sequence[str]) -> int:
@@ -374,8 +375,8 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
         bad("'symbols' must be a list of at least two labels", "symbols")
         raise TaskError(problems)
     for s in symbols:
-        if not isinstance(s, str) or not s or "-" in s or any(ch.isspace() for ch in s) or s == "*":
-            bad(f"symbol label {s!r} must be a non-empty string without '-', '*' or whitespace",
+        if (why := symbol_label_problem(s)) is not None:
+            bad(why,
                 "symbols")
     if len(set(symbols)) != len(symbols):
         dupes = sorted({s for s in symbols if symbols.count(s) > 1})

@@ -1,7 +1,7 @@
 """Learner models: predictive distributions of the next symbol from the stimuli seen so far.
 
-Every learner is a frozen dataclass with ``depth``, ``predict_proba(x, m)``,
-``log_predict_proba(x, m)`` and ``log_evidence(x, m, start=None)``; see
+Every learner is a frozen dataclass with ``depth``, ``next_proba(x, m)``,
+``log_next_proba(x, m)`` and ``log_evidence(x, m, start=None)``; see
 :class:`foretell.learners.base.Learner`.
 """
 

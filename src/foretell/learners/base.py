@@ -306,7 +306,7 @@ def dirichlet_log_marginal(counts: np.ndarray, alpha: float) -> np.ndarray:
 
 
 class Learner:
-    """The learner contract: ``depth``, ``log_predict_proba``, ``predict_proba``, ``log_evidence``.
+    """The learner contract: ``depth``, ``log_next_proba``, ``next_proba``, ``log_evidence``.
 
     Subclasses are frozen dataclasses implementing ``depth`` and one of
     ``_predict(x, m)`` or ``_log_predict(x, m)`` (x already checked; each
@@ -324,11 +324,11 @@ class Learner:
         with np.errstate(divide="ignore"):
             return np.log(self._predict(x, n_symbols))
 
-    def log_predict_proba(self, x: np.ndarray, n_symbols: int) -> np.ndarray:
+    def log_next_proba(self, x: np.ndarray, n_symbols: int) -> np.ndarray:
         """Return log P(x[t] = a | x[:t]) as an array (len(x), m); rows t < depth are log(1/m)."""
         return self._log_predict(check_sequence(x, n_symbols), int(n_symbols))
 
-    def predict_proba(self, x: np.ndarray, n_symbols: int) -> np.ndarray:
+    def next_proba(self, x: np.ndarray, n_symbols: int) -> np.ndarray:
         """Return P(x[t] = a | x[:t]) as an array (len(x), m); rows t < depth are uniform 1/m."""
         return self._predict(check_sequence(x, n_symbols), int(n_symbols))
 

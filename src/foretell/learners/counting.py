@@ -7,7 +7,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from .base import Grouping, Learner, check_depth, check_hyper, dirichlet_predict, suffix_codes
+from foretell.params import PARAMS
+
+from .base import Grouping, Learner, check_depth, dirichlet_predict, suffix_codes
 
 
 def counting_predict(grouping: Grouping, alpha: float, leak: float) -> np.ndarray:
@@ -54,8 +56,8 @@ class Counting(Learner):
 
     def __post_init__(self) -> None:
         check_depth("Counting depth", self.depth)
-        check_hyper("Counting alpha", self.alpha, 0.0, np.inf, low_open=True, high_open=True)
-        check_hyper("Counting leak", self.leak, 0.0, 1.0, high_open=True)
+        PARAMS["alpha"].check(self.alpha, "Counting")
+        PARAMS["leak"].check(self.leak, "Counting")
 
     def _predict(self, x: np.ndarray, n_symbols: int) -> np.ndarray:
         grouping = suffix_grouping(x.tobytes(), n_symbols, self.depth, self.depth)

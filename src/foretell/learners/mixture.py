@@ -29,6 +29,8 @@ import numpy as np
 from scipy.special import log_expit, logit
 
 from foretell.errors import UsageError
+from foretell.labels import context_label
+from foretell.params import PARAMS
 
 from .base import (Grouping, Learner, check_depth, check_hyper, check_sequence,
                    dirichlet_log_marginal, suffix_codes)
@@ -77,13 +79,12 @@ class TreePosterior:
         """
         import pandas as pd
 
-        def label(c: tuple[int, ...]) -> str:
-            names = [symbols[i] if symbols is not None else str(i) for i in c]
-            return "-".join(names) if names else "*"
+        names = symbols if symbols is not None else [str(i) for i in range(max(
+            (max(c) for c in self.contexts if c), default=-1) + 1)]
 
         leaves = set(self.map_tree)
         return pd.DataFrame({
-            "context": [label(c) for c in self.contexts],
+            "context": [context_label(names, c) for c in self.contexts],
             "depth": [len(c) for c in self.contexts],
             "n_obs": self.n_obs,
             "stop_prob": self.stop_prob,
@@ -112,7 +113,7 @@ class TreeMixture(Learner):
         if self.max_depth > MAX_TREE_DEPTH:
             raise UsageError(f"TreeMixture max_depth must be at most {MAX_TREE_DEPTH}, "
                              f"got {self.max_depth}")
-        check_hyper("TreeMixture alpha", self.alpha, 0.0, np.inf, low_open=True, high_open=True)
+        PARAMS["alpha"].check(self.alpha, "TreeMixture")
         if self.leaf_prob is not None:
             check_hyper("TreeMixture leaf_prob", self.leaf_prob, 0.0, 1.0)
 

@@ -8,9 +8,10 @@ from functools import lru_cache
 import numpy as np
 
 from foretell.errors import UsageError
+from foretell.params import PARAMS
 from foretell.tasks import Task
 
-from .base import Grouping, Learner, check_hyper
+from .base import Grouping, Learner
 from .counting import counting_predict
 
 
@@ -81,8 +82,8 @@ class TaskCounting(Learner):
 
     def __post_init__(self) -> None:
         _check_task(self.task, "TaskCounting")
-        check_hyper("TaskCounting alpha", self.alpha, 0.0, np.inf, low_open=True, high_open=True)
-        check_hyper("TaskCounting leak", self.leak, 0.0, 1.0, high_open=True)
+        PARAMS["alpha"].check(self.alpha, "TaskCounting")
+        PARAMS["leak"].check(self.leak, "TaskCounting")
 
     @property
     def depth(self) -> int:
