@@ -9,6 +9,7 @@ import pytest
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source, TaskCounting, TreeMixture
 from foretell.models import PARAMS, default_models, model_specs, parse_model
+from foretell.tasks import load_task
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
 
@@ -62,7 +63,7 @@ def test_learner_gets_fitted_values_and_defaults(lantern):
     assert parse_model("count-1", lantern).learner().leak == 0.0
 
 
-@pytest.mark.parametrize("bad", ["count", "count-x", "Count-1", "count-1-leaky", "mix-", "mix-2-leak",
+@pytest.mark.parametrize("bad", ["count", "count-x", "count-1-leaky", "mix-", "mix-2-leak",
                                  "source-1", "count-task-leak", ""])
 def test_unknown_identifiers_are_refused(lantern, bad):
     with pytest.raises(UsageError, match="unknown model"):
@@ -75,3 +76,29 @@ def test_bad_free_names_and_duplicates_are_refused(lantern):
     with pytest.raises(UsageError, match="twice"):
         model_specs(["count-1", "count-1"], lantern)
     assert [s.model_id for s in model_specs(None, lantern)] == default_models(lantern)
+
+
+@pytest.mark.parametrize("spelling, canonical", [("count-01", "count-1"), (" Count-1 ", "count-1"),
+                                                 ("count-002-leak", "count-2-leak"), ("MIX-04", "mix-4"),
+                                                 ("count-task", "count-task")])
+def test_model_ids_are_normalised(lantern, spelling, canonical):
+    assert parse_model(spelling, lantern).model_id == canonical
+
+
+def test_the_same_model_under_two_spellings_is_refused(lantern):
+    with pytest.raises(UsageError, match="listed twice.*count-1"):
+        model_specs(["count-01", "count-1"], lantern)
+
+
+def test_model_depth_beyond_the_learners_limit_is_refused_before_fitting(lantern):
+    with pytest.raises(UsageError, match="at most 12 back"):
+        parse_model("count-13", lantern)
+
+
+def test_family_and_signature(lantern):
+    fair = load_task("compass-fair")  # memoryless: count-task counts what count-0 counts
+    assert parse_model("count-task", fair).signature == parse_model("count-0", fair).signature
+    assert parse_model("count-task", lantern).signature != parse_model("count-3", lantern).signature
+    assert [parse_model(m, lantern).family for m in ("count-1-leak", "count-2", "mix-4", "source")] == [
+        "shallow", "deep", "deep", None]
+    assert parse_model("count-task", fair).family == "shallow"

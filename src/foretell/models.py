@@ -10,16 +10,27 @@ from typing import Any
 
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source, TaskCounting, TreeMixture
+from foretell.learners.mixture import MAX_TREE_DEPTH
 from foretell.params import CHOICE_PARAMS, DEFAULT_ALPHA, LEARNER_PARAMS, PARAMS, Param
 from foretell.tasks import Task
 
+FAMILIES = ("shallow", "deep")
+"""Model families: learners that use at most one symbol of the past, and those that use more."""
+SHALLOW_MAX_DEPTH = 1
+
+
 @dataclass(frozen=True)
 class ModelSpec:
-    """A candidate model: learner factory, context depth, free parameters.
+    """A candidate model: learner factory, context depth, family and free parameters.
 
     ``free`` lists the fitted parameters (inv_temp and lapse first, then any
     of leak and alpha); ``tunable`` the learner parameters the factory
     accepts; ``defaults`` the learner values used when they are not fitted.
+    ``family`` is "shallow" (depth <= 1), "deep" (depth >= 2) or None for the
+    oracle ``source``, which learns nothing. ``signature`` says what the
+    learner computes: two specs with equal signatures and equal free
+    parameters make identical predictions on every sequence (e.g. count-task
+    on a memoryless task is count-0).
     """
 
     model_id: str
@@ -28,6 +39,8 @@ class ModelSpec:
     tunable: tuple[str, ...]
     defaults: tuple[tuple[str, float], ...]
     factory: Callable[..., Any] = field(compare=False, repr=False)
+    family: str | None = None
+    signature: tuple = ()
 
     def learner(self, **values: float) -> Any:
         """Return the learner with ``values`` for its tunable parameters (defaults otherwise)."""
@@ -43,6 +56,8 @@ class ModelSpec:
 
 _COUNT = re.compile(r"count-(\d+)(-leak)?")
 _MIX = re.compile(r"mix-(\d+)")
+MAX_MODEL_DEPTH = MAX_TREE_DEPTH
+"""The deepest context a model may use: the tree mixture's limit, and the counting learners' too."""
 _FORMS = "count-K, count-K-leak, count-task, mix-D, source (K, D whole numbers)"
 
 
@@ -58,25 +73,49 @@ def parse_model(model_id: str, task: Task, free: Iterable[str] = ()) -> ModelSpe
     source neither).
     """
     extra = _check_free(free)
+    model_id = normalise_model_id(model_id)
     fixed_leak = {"leak": 0.0}
     if (match := _COUNT.fullmatch(model_id)) is not None:
         depth, leaky = int(match.group(1)), match.group(2) is not None
         factory, tunable, defaults = partial(Counting, depth=depth), LEARNER_PARAMS, fixed_leak
         extra = extra + ("leak",) if leaky else extra
+        signature: tuple = ("count", depth)
     elif model_id == "count-task":
         depth, factory = task.max_depth, partial(TaskCounting, task)
         tunable, defaults = LEARNER_PARAMS, fixed_leak
+        full = len(task.contexts) == task.n_symbols ** depth and all(len(c) == depth for c in task.contexts)
+        signature = ("count", depth) if full else ("count-task", task.contexts)
     elif (match := _MIX.fullmatch(model_id)) is not None:
         depth = int(match.group(1))
         factory, tunable, defaults = partial(TreeMixture, max_depth=depth), ("alpha",), {}
+        signature = ("mix", depth)
     elif model_id == "source":
+        if not task.has_source:
+            raise UsageError(f"model 'source' needs the task's source probabilities, and task "
+                             f"{task.name!r} gives none")
         depth, factory, tunable, defaults = task.max_depth, partial(Source, task), (), {}
+        signature = ("source",)
     else:
         raise UsageError(f"unknown model {model_id!r}; expected one of {_FORMS}")
+    if depth > MAX_MODEL_DEPTH:
+        raise UsageError(f"model {model_id!r} looks {depth} symbols back; foretell's learners "
+                         f"look at most {MAX_MODEL_DEPTH} back")
     defaults = {"alpha": DEFAULT_ALPHA, **defaults} if "alpha" in tunable else defaults
     learner_free = tuple(p for p in LEARNER_PARAMS if p in extra and p in tunable)
+    family = None if model_id == "source" else \
+        ("shallow" if depth <= SHALLOW_MAX_DEPTH else "deep")
     return ModelSpec(model_id, depth, CHOICE_PARAMS + learner_free, tunable,
-                     tuple(sorted(defaults.items())), factory)
+                     tuple(sorted(defaults.items())), factory, family, signature)
+
+
+def normalise_model_id(model_id: str) -> str:
+    """Return the canonical spelling of a model id: stray spaces and case dropped, 'count-01' -> 'count-1'."""
+    text = str(model_id).strip().lower()
+    if (match := _COUNT.fullmatch(text)) is not None:
+        return f"count-{int(match.group(1))}{match.group(2) or ''}"
+    if (match := _MIX.fullmatch(text)) is not None:
+        return f"mix-{int(match.group(1))}"
+    return text
 
 
 def model_specs(models: Sequence[str | ModelSpec] | None, task: Task,
@@ -88,7 +127,9 @@ def model_specs(models: Sequence[str | ModelSpec] | None, task: Task,
     specs = [m if isinstance(m, ModelSpec) else parse_model(m, task, free) for m in ids]
     seen = [s.model_id for s in specs]
     if len(set(seen)) != len(seen):
-        raise UsageError(f"models listed twice: {sorted({s for s in seen if seen.count(s) > 1})}")
+        twice = sorted({s for s in seen if seen.count(s) > 1})
+        raise UsageError(f"models listed twice (ids are compared after normalising, e.g. "
+                         f"count-01 is count-1): {', '.join(twice)}")
     return specs
 
 
@@ -98,9 +139,10 @@ def default_models(task: Task) -> list[str]:
     count-0 ... count-K with K = max(task.max_depth + 1, 3), count-0-leak,
     count-1-leak, count-task, mix-K and source.
     """
-    k = max(task.max_depth + 1, 3)
-    return ([f"count-{d}" for d in range(k + 1)]
-            + ["count-0-leak", "count-1-leak", "count-task", f"mix-{k}", "source"])
+    k = min(max(task.max_depth + 1, 3), MAX_MODEL_DEPTH)
+    return ([f"count-{d}" for d in range(k + 1)] + ["count-0-leak", "count-1-leak"]
+            + (["count-task"] if task.has_source else []) + [f"mix-{k}"]
+            + (["source"] if task.has_source else []))
 
 
 def _check_free(free: Iterable[str]) -> tuple[str, ...]:

@@ -93,6 +93,11 @@ class Task:
         return len(self.symbols)
 
     @property
+    def has_source(self) -> bool:
+        """Return whether the task gives the source's contexts and probabilities."""
+        return len(self.contexts) > 0
+
+    @property
     def max_depth(self) -> int:
         """Return the length of the longest context."""
         return max(len(c) for c in self.contexts)
