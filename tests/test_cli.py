@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 import pytest
@@ -109,9 +110,191 @@ def test_existing_output_is_refused_before_any_work(tmp_path: Path, capsys: pyte
     blocked = tmp_path / "afile"
     blocked.write_text("")
     assert main(["fit", str(log), "--task", str(TASKS / "tide-gauge.toml"), "--out", str(blocked / "sub")]) == 1
-    assert "not a directory" in capsys.readouterr().err
+    assert "not a folder" in capsys.readouterr().err
 
 
 def test_task_by_shipped_name(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["task", "compass-fair"]) == 0
     assert "task 'compass-fair'" in capsys.readouterr().out
+
+
+# --- data safety and plain messages --------------------------------------------------------
+
+def _study(tmp_path: Path, folder: str = "full") -> Path:
+    """A small valid log of two tide-gauge participants, written into tmp_path/folder."""
+    import numpy as np
+
+    from foretell.simulate import simulate_participants
+    from foretell.tasks import load_task
+
+    log, _ = simulate_participants(load_task("tide-gauge"), 2, 2, models=["count-1"], seed=5,
+                                   block_length=40)
+    path = tmp_path / folder / "study.csv"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    log.assign(rt=np.round(log["rt"], 3)).to_csv(path, index=False)
+    return path
+
+
+def test_version(capsys: pytest.CaptureFixture[str]) -> None:
+    import foretell
+
+    with pytest.raises(SystemExit) as exit_:
+        main(["--version"])
+    assert exit_.value.code == 0 and capsys.readouterr().out.strip() == f"foretell {foretell.__version__}"
+
+
+def test_fit_help_lists_models_and_task_help_names_shipped_tasks(capsys) -> None:
+    with pytest.raises(SystemExit):
+        main(["fit", "--help"])
+    out = capsys.readouterr().out
+    assert "count-K-leak" in out and "mix-D" in out and "default set" in out and "inv_temp" in out
+    with pytest.raises(SystemExit):
+        main(["task", "--help"])
+    assert "shipped" in capsys.readouterr().out
+
+
+def test_force_with_the_input_in_the_output_folder_loses_nothing(tmp_path: Path, capsys) -> None:
+    # The tester's case: `fit full/study.csv --out full --force` deleted study.csv and keep.txt.
+    log = _study(tmp_path)
+    (log.parent / "keep.txt").write_text("mine")
+    before = {p.name: p.read_bytes() for p in log.parent.iterdir()}
+    assert main(["fit", str(log), "--task", "tide-gauge", "--out", str(log.parent), "--force"]) == 1
+    assert "holds the input" in capsys.readouterr().err
+    assert {p.name: p.read_bytes() for p in log.parent.iterdir()} == before
+
+
+@pytest.mark.parametrize("out", [".", "", ".."])
+def test_current_empty_and_parent_output_folders_are_refused(tmp_path: Path, monkeypatch, capsys,
+                                                             out: str) -> None:
+    log = _study(tmp_path, "data/inner")
+    monkeypatch.chdir(log.parent)
+    assert main(["fit", "study.csv", "--task", "tide-gauge", "--out", out, "--force"]) == 1
+    assert "Traceback" not in capsys.readouterr().err
+    assert sorted(p.name for p in log.parent.iterdir()) == ["study.csv"]
+
+
+def test_fit_writes_manifest_and_inputs_stay_unchanged(tmp_path: Path, capsys) -> None:
+    import hashlib
+    import json
+
+    log = _study(tmp_path)
+    digest = hashlib.sha256(log.read_bytes()).hexdigest()
+    out = tmp_path / "res"
+    assert main(["fit", str(log), "--task", "tide-gauge", "--out", str(out), "--models",
+                 "count-0,count-1", "--seed", "4", "--trials", "none"]) == 0
+    assert hashlib.sha256(log.read_bytes()).hexdigest() == digest  # inputs are never modified
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["inputs"][str(log)] == digest and manifest["options"]["seed"] == 4
+    assert manifest["foretell_version"] and "numpy" in manifest["packages"]
+    assert not (out / "trials.csv").exists()
+    # the same command and seed give byte-identical tables
+    again = tmp_path / "res2"
+    assert main(["fit", str(log), "--task", "tide-gauge", "--out", str(again), "--models",
+                 "count-0,count-1", "--seed", "4", "--trials", "none"]) == 0
+    for table in out.glob("*.csv"):
+        assert (again / table.name).read_bytes() == table.read_bytes(), table.name
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--seed", "-1"], ">= 0"),
+    (["--models", "count-01,count-1"], "listed twice"),
+    (["--models", "count-13"], "at most 12"),
+])
+def test_bad_fit_options_are_one_line_usage_errors(tmp_path: Path, capsys, args, message) -> None:
+    log = _study(tmp_path)
+    try:
+        code = main(["fit", str(log), "--task", "tide-gauge", "--out", str(tmp_path / "r"), *args])
+    except SystemExit as exit_:
+        code = exit_.code
+    err = capsys.readouterr().err
+    assert code == 2 and message in err and "Traceback" not in err
+    assert not (tmp_path / "r").exists()
+
+
+def test_fit_shows_the_logs_warnings(tmp_path: Path, capsys) -> None:
+    log = _study(tmp_path)
+    text = log.read_text().splitlines()
+    log.write_text("\n".join([text[0] + ",email"] + [line + ",x@y" for line in text[1:]]) + "\n")
+    assert main(["fit", str(log), "--task", "tide-gauge", "--out", str(tmp_path / "r"),
+                 "--models", "count-0"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("personal data") == 1
+
+
+def test_sigterm_leaves_no_output_and_no_worker(tmp_path: Path) -> None:
+    # Interrupting a parallel fit (POSIX SIGTERM) must leave nothing behind: no folder, no
+    # partial folder, no child process.
+    import os
+    import signal
+    import subprocess
+    import time
+
+    from foretell.demo import demo_log
+
+    log = tmp_path / "demo.csv"
+    demo_log().to_csv(log, index=False)
+    out = tmp_path / "res"
+    proc = subprocess.Popen([sys.executable, "-m", "foretell.cli", "fit", str(log), "--task",
+                             "lantern-relay", "--out", str(out), "--jobs", "2"],
+                            stderr=subprocess.PIPE, stdout=subprocess.PIPE, start_new_session=True)
+    time.sleep(6)
+    children = _children(proc.pid)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 128 + signal.SIGTERM, err.decode()
+    assert b"Traceback" not in err
+    assert list(tmp_path.iterdir()) == [log]
+    time.sleep(1)
+    alive = [pid for pid in children if _alive(pid)]
+    for pid in alive:
+        os.kill(pid, signal.SIGKILL)
+    assert alive == []
+
+
+def _children(pid: int) -> list[int]:
+    import subprocess
+
+    out = subprocess.run(["ps", "-o", "pid=", "--ppid", str(pid)], capture_output=True, text=True)
+    return [int(p) for p in out.stdout.split()]
+
+
+def _alive(pid: int) -> bool:
+    import os
+
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    try:  # a zombie is dead
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().split()[2] != "Z"
+    except OSError:
+        return False
+
+
+def test_recover_writes_tables_figures_and_the_answer(tmp_path: Path, capsys) -> None:
+    out = tmp_path / "design"
+    assert main(["recover", "--task", "tide-gauge", "--participants", "4", "--trials", "80",
+                 "--models", "count-0,count-1", "--out", str(out)]) == 0
+    assert "Design check" in capsys.readouterr().out
+    written = {p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file()}
+    assert {"confusion.csv", "inversion.csv", "params.csv", "recovery_summary.csv", "group_check.csv",
+            "answer.txt", "manifest.json", "figures/recovery.png", "figures/confusion_80.png"} <= written
+    assert (out / "figures" / "recovery.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_recover_from_fits_and_its_bad_inputs(tmp_path: Path, capsys) -> None:
+    log = _study(tmp_path)
+    fit_out = tmp_path / "res"
+    assert main(["fit", str(log), "--task", "tide-gauge", "--out", str(fit_out), "--models",
+                 "count-0,count-1", "--trials", "none"]) == 0
+    assert main(["recover", "--task", "tide-gauge", "--participants", "3", "--trials", "60",
+                 "--models", "count-0,count-1", "--from-fits", str(fit_out), "--out",
+                 str(tmp_path / "d")]) == 0
+    capsys.readouterr()
+    assert main(["recover", "--task", "tide-gauge", "--participants", "3", "--trials", "6O",
+                 "--models", "count-0", "--out", str(tmp_path / "e")]) == 2
+    assert "--trials" in capsys.readouterr().err
+    assert main(["recover", "--task", "tide-gauge", "--participants", "3", "--trials", "60",
+                 "--models", "count-0", "--from-fits", str(tmp_path), "--out", str(tmp_path / "f")]) == 1
+    assert "fits.csv" in capsys.readouterr().err

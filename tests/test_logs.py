@@ -14,7 +14,7 @@ from scipy.stats import median_abs_deviation, norm
 
 from foretell.errors import LogError, UsageError
 from foretell.logs import (RT_FLAGS, RTScreen, load_log, log_summary,
-                           screen_rt, validate_log)
+                           ValidatedLog, screen_rt, unscorable, validate_log)
 from foretell.tasks import Task
 
 TASK = Task.from_dict({"name": "t", "symbols": ["a", "b", "c"],
@@ -199,10 +199,25 @@ def test_duplicated_trial(tmp_path):
     assert (problem.line, problem.column) == (7, "trial") and "repeats" in problem.message
 
 
-def test_non_increasing_trial_in_file_order(tmp_path):
+def test_trials_within_a_block_are_ordered_by_number(tmp_path):
     lines = [HEADER, "p01,1,1,2,a,a,0.5", "p01,1,1,1,b,b,0.5"]
+    frame = load_log(write(tmp_path, lines), TASK).frame
+    assert list(zip(frame["trial"], frame["stimulus"])) == [(1, "b"), (2, "a")]
+
+
+def test_trial_numbers_that_restart_in_every_block_are_accepted(tmp_path):
+    lines = [HEADER] + [f"p01,1,{b},{t},{'abc'[(b + t) % 3]},a,0.5"
+                        for b in (1, 2, 3) for t in (1, 2, 3)]
+    frame = load_log(write(tmp_path, lines), TASK).frame
+    assert list(zip(frame["block"], frame["trial"])) == [(b, t) for b in (1, 2, 3) for t in (1, 2, 3)]
+    assert list(frame["stimulus"]) == ["abc"[(b + t) % 3] for b in (1, 2, 3) for t in (1, 2, 3)]
+
+
+def test_only_a_true_duplicate_is_refused(tmp_path):
+    lines = [HEADER, "p01,1,1,1,a,a,0.5", "p01,1,2,1,a,a,0.5", "p01,2,2,1,a,a,0.5",
+             "p02,1,2,1,a,a,0.5", "p01,1,2,1,b,b,0.5"]
     (problem,) = problems_of(write(tmp_path, lines))
-    assert (problem.line, problem.column) == (3, "trial") and "lower" in problem.message
+    assert (problem.line, problem.column) == (6, "trial") and "repeats" in problem.message
 
 
 def test_order_is_checked_within_participant_and_session_only(tmp_path):
@@ -394,7 +409,7 @@ def test_mad_of_zero_flags_nothing_and_warns():
         "response": "a", "rt": [0.5, 0.5, 0.5, 2.0]}), TASK, screen=RTScreen(mad_k=3))
     frame = log.frame
     assert (frame["rt_flag"] == "").all()
-    assert any("MAD of their 4 log RT(s) is 0" in w for w in log.warnings)
+    assert any("MAD of their 4 log RTs is 0" in w for w in log.warnings)
     assert screen_rt(log, RTScreen()).warnings == ()  # rescreening replaces it
 
 
@@ -515,3 +530,149 @@ def test_parquet_log_equals_the_csv_log(tmp_path) -> None:
     from_parquet = load_log(tmp_path / "log.parquet", task).frame
     pd.testing.assert_frame_equal(from_csv.reset_index(drop=True), from_parquet.reset_index(drop=True),
                                   check_dtype=False)
+
+
+# --- regressions: inputs that used to overflow, crash or mislead --------------
+
+@pytest.mark.parametrize("column,value", [("block", "1e19"), ("block", "1e20"),
+                                          ("trial", "99999999999999999999"),
+                                          ("session", "9007199254740992"), ("trial", "-1e300"),
+                                          ("trial", "9" * 5000), ("block", "1e999999999")])
+def test_numbers_too_large_are_refused(tmp_path, column, value):
+    row = {"participant": "p01", "session": "1", "block": "1", "trial": "2",
+           "stimulus": "a", "response": "a", "rt": "0.5"}
+    row[column] = value
+    lines = [HEADER, "p01,1,1,1,a,a,0.5", ",".join(row[c] for c in HEADER.split(","))]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, column)
+    assert f"{column} number too large" in problem.message
+
+
+def test_large_whole_numbers_below_the_limit_are_read_exactly(tmp_path):
+    lines = [HEADER, "p01,1,1,9007199254740990,a,a,0.5", "p01,1,1,9007199254740991,b,a,0.5",
+             "p01,1,2,1e3,c,a,0.5"]
+    frame = load_log(write(tmp_path, lines), TASK).frame
+    assert list(frame["trial"]) == [9007199254740990, 9007199254740991, 1000]
+
+
+def test_numbers_too_large_in_a_frame_are_refused():
+    frame = pd.DataFrame({"participant": ["p01", "p01"], "block": np.array([1, 2**63 + 1], dtype=np.uint64),
+                          "trial": [1.0, 1e20], "stimulus": ["a", "b"], "response": ["a", "a"]})
+    with pytest.raises(LogError) as err:
+        validate_log(frame, TASK)
+    assert [(p.line, p.column) for p in err.value.problems] == [(3, "block"), (3, "trial")]
+    assert all("too large" in p.message for p in err.value.problems)
+
+
+@pytest.mark.parametrize("column,value", [("participant", "p\x0001"), ("group", "young\x07"),
+                                          ("participant", "p\u200b01"), ("stimulus", "a\x00"),
+                                          ("response", "\x00b")])
+def test_control_characters_are_refused(tmp_path, column, value):
+    header = "participant,group,block,trial,stimulus,response"
+    row = dict(zip(header.split(","), ["p01", "young", "1", "2", "a", "a"]))
+    row[column] = value
+    lines = [header, "p01,young,1,1,a,a", ",".join(row.values())]
+    problems = problems_of(write(tmp_path, lines))
+    assert [(p.line, p.column) for p in problems][:1] == [(3, column)]
+    assert "control character U+" in problems[0].message
+
+
+def test_a_log_of_only_delimiters_is_one_problem(tmp_path):
+    path = tmp_path / "log.csv"
+    path.write_text(",,,,\n,,,,\n")
+    (problem,) = problems_of(path)
+    assert problem.line == 1 and "the header line has no column names" in problem.message
+
+
+def test_missing_columns_suggest_the_closest_and_show_both_spellings(tmp_path):
+    lines = ["participant,blocks,trial,stimulus,guess", "p01,1,1,a,b"]
+    problems = problems_of(write(tmp_path, lines))
+    assert [p.column for p in problems] == ["block", "response"]
+    block, response = (p.message for p in problems)
+    assert "the log has 'participant', 'blocks', 'trial', 'stimulus', 'guess'" in block
+    assert "closest is 'blocks'" in block and "columns={'block': 'blocks'}" in block
+    assert "--map block=blocks" in block
+    assert "closest" not in response and "--map response=" in response
+
+
+def test_unterminated_quote_names_its_line(tmp_path):
+    lines = GOOD[:3] + ['p01,1,1,2,c,"b,0.5'] + GOOD[4:] + [f"p03,1,1,{t},a,a,0.5" for t in range(1, 6)]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert problem.line == 4
+    assert "unterminated quote starting on line 4" in problem.message
+    assert "end of the file" in problem.message
+
+
+def test_quote_closed_much_later_is_still_named(tmp_path):
+    lines = [HEADER + ",note", 'p01,1,1,1,a,a,0.5,"oops', "p01,1,1,2,b,b,0.5,x",
+             'p01,1,1,3,b,b,0.5,"ok"', "p01,1,1,4,b,b,0.5,y"]
+    problems = problems_of(write(tmp_path, lines))
+    assert problems[0].line == 2 and "unterminated quote starting on line 2" in problems[0].message
+
+
+@pytest.mark.parametrize("encoding,line", [("latin-1", 4), ("utf-16", 1), ("utf-16-le", 1)])
+def test_foreign_encodings_name_a_line(tmp_path, encoding, line):
+    path = tmp_path / "log.csv"
+    lines = GOOD[:3] + ["p01,1,1,2,c,,caf\u00e9"] + GOOD[4:]
+    path.write_bytes(("\n".join(lines) + "\n").encode(encoding))
+    (problem,) = problems_of(path)
+    assert problem.line == line
+    assert ("UTF-16" in problem.message) == encoding.startswith("utf-16")
+    assert "offset" not in problem.message and "save" in problem.message
+
+
+def test_counts_are_singular_or_plural(tmp_path):
+    one = load_log(write(tmp_path, GOOD[:3] + ["p01,1,1,2,c,,0.7"]), TASK)
+    assert any("1 missed guess carries an RT" in w for w in one.warnings)
+    two = load_log(write(tmp_path, GOOD[:3] + ["p01,1,1,2,c,,0.7", "p01,1,1,3,c,,0.7"]), TASK)
+    assert any("2 missed guesses carry an RT" in w for w in two.warnings)
+    ragged = problems_of(write(tmp_path, [HEADER, "p01"]))
+    assert "has 1 field but" in ragged[0].message
+
+
+# --- unscorable participants ---------------------------------------------------
+
+def _log_of(responses: dict[str, list[str]]) -> ValidatedLog:
+    rows = [{"participant": p, "session": 1 + (t >= 4), "block": 1, "trial": t % 4 + 1,
+             "stimulus": "abc"[t % 3], "response": r}
+            for p, guesses in responses.items() for t, r in enumerate(guesses)]
+    return validate_log(pd.DataFrame(rows), TASK)
+
+
+def test_unscorable_participants_and_reasons():
+    log = _log_of({"p01": ["a", "b", "", "c", "a", "b", "c", "a"],   # fine
+                   "p02": [""] * 8,                                 # never guessed
+                   "p03": ["a", "b", "", "", "c", "a", "", ""],     # guesses only in warm-up
+                   "p04": ["b"] * 8})                               # the same guess: scorable
+    table = unscorable(log, warmup=2)
+    assert list(table.columns) == ["participant", "reason"]
+    assert table.values.tolist() == [
+        ["p02", "every guess missed"],
+        ["p03", "no guess after the first 2 trials of a session (warm-up)"]]
+    assert unscorable(log, warmup=0)["participant"].tolist() == ["p02"]
+    assert unscorable(log, warmup=3)["participant"].tolist() == ["p02", "p03"]
+    everyone = unscorable(log, warmup=4)  # sessions of 4 trials: all warm-up
+    assert everyone["participant"].tolist() == ["p01", "p02", "p03", "p04"]
+    assert everyone["reason"].str.contains("warm-up").tolist() == [True, False, True, True]
+
+
+def test_unscorable_of_a_clean_log_is_empty_and_bad_warmup_is_a_usage_error(tmp_path):
+    log = load_log(write(tmp_path, GOOD), TASK)
+    assert unscorable(log, warmup=1).empty
+    for warmup in (-1, 1.5, True):
+        with pytest.raises(UsageError):
+            unscorable(log, warmup=warmup)
+
+
+def test_measure_columns_are_carried_over_as_numbers(tmp_path):
+    lines = [HEADER + ",p3_amp", "p01,1,1,1,a,a,0.5,2.5", "p01,1,1,2,b,b,0.5,", "p01,1,1,3,a,b,0.5,-1e-3"]
+    log = load_log(write(tmp_path, lines), TASK, measures=["p3_amp"])
+    assert np.allclose(log.frame["p3_amp"], [2.5, np.nan, -1e-3], equal_nan=True)
+    assert not any("p3_amp" in w for w in log.warnings)
+    bad = [HEADER + ",p3_amp", "p01,1,1,1,a,a,0.5,big"]
+    (problem,) = problems_of(write(tmp_path, bad, "bad.csv"), measures=["p3_amp"])
+    assert (problem.line, problem.column) == (2, "p3_amp")
+    (missing,) = problems_of(write(tmp_path, GOOD, "m.csv"), measures=["p3_amp"])
+    assert "missing measure column 'p3_amp'" in missing.message
+    with pytest.raises(UsageError, match="shadow"):
+        load_log(write(tmp_path, GOOD, "s.csv"), TASK, measures=["rt_ok"])

@@ -11,7 +11,8 @@ import pandas as pd
 import pytest
 
 from foretell.demo import demo_log, demo_task, demo_truth, make_demo_data
-from foretell.tasks import shipped_tasks
+import foretell
+from foretell.tasks import load_task, shipped_tasks
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source
 from foretell.logs import load_log, validate_log
@@ -155,3 +156,23 @@ def test_regeneration_script_refuses_to_overwrite(tmp_path):
     assert (tmp_path / "demo_log.csv").read_text() == first
     assert script.main([str(tmp_path), "--seed", "2", "--force"]) == 0
     assert (tmp_path / "demo_log.csv").read_text() != first
+
+
+def test_a_leaky_model_id_simulates_with_leak_and_fit_recovers_it():
+    # The truth table must describe what was simulated: a count-K-leak participant forgets.
+    task = load_task("tide-gauge")
+    log, truth = simulate_participants(task, 6, 3, models=["count-1-leak"], seed=11, block_length=150)
+    assert truth["leak"].between(0.05, 0.4).all() and truth["leak"].nunique() == 6
+    result = foretell.fit(log, task, models=["count-1", "count-1-leak"], seed=0)
+    best = result.winners.query("block == 'all'").set_index("participant")["best_model"]
+    assert (best == "count-1-leak").mean() >= 5 / 6
+    fitted = result.fits.query("model == 'count-1-leak'").set_index("participant")["leak"]
+    true = truth.set_index("participant")["leak"]
+    # recovered, not merely nonzero: rank agreement and small error (common practice in recovery checks)
+    assert np.corrcoef(fitted[true.index], true)[0, 1] > 0.7
+    assert np.abs(fitted[true.index] - true).median() < 0.1
+
+
+def test_a_leaky_model_with_zero_leak_is_refused():
+    with pytest.raises(UsageError, match="above 0"):
+        ParticipantSpec("count-0-leak", leak=(0.0, 0.2))

@@ -35,7 +35,7 @@ def write(tmp_path: Path, text: str) -> Path:
     return path
 
 
-@pytest.mark.parametrize("name", ["lantern-relay", "tide-gauge", "compass-fair"])
+@pytest.mark.parametrize("name", ["lantern-relay", "tide-gauge", "compass-fair", "keypad-chase"])
 def test_shipped_tasks_load(name: str) -> None:
     task = load_task(TASKS / f"{name}.toml")
     assert task.name == name
@@ -127,8 +127,8 @@ GOOD_HEAD = 'name = "t"\nsymbols = ["a", "b"]\n'
 
 
 @pytest.mark.parametrize("body,fragment", [
-    ('[[contexts]]\npast = ["z"]\nnext = {a = 0.5, b = 0.5}\n', "unknown symbol(s) 'z' in 'past'"),
-    ('[[contexts]]\npast = []\nnext = {a = 0.5, c = 0.5}\n', "unknown symbol(s) 'c' in 'next'"),
+    ('[[contexts]]\npast = ["z"]\nnext = {a = 0.5, b = 0.5}\n', "unknown symbol 'z' in 'past'"),
+    ('[[contexts]]\npast = []\nnext = {a = 0.5, c = 0.5}\n', "unknown symbol 'c' in 'next'"),
     ('[[contexts]]\npast = []\nnext = {a = 1.2, b = -0.2}\n', "negative probability"),
     ('[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.6}\n', "sum to 1.1"),
     ('[[contexts]]\npast = []\nnext = {a = 1.0}\n', "no probability for 'b'"),
@@ -221,7 +221,7 @@ def test_samples_follow_the_tree(task: Task, seed: int) -> None:
 
 
 def test_shipped_task_by_name() -> None:
-    assert {"lantern-relay", "tide-gauge", "compass-fair"} <= set(shipped_tasks())
+    assert {"lantern-relay", "tide-gauge", "compass-fair", "keypad-chase"} <= set(shipped_tasks())
     assert load_task("tide-gauge").name == "tide-gauge"
 
 
@@ -243,3 +243,115 @@ def test_completeness_is_checked_for_very_deep_trees() -> None:
     contexts = [{"past": ["a"] * 23, "next": {"a": 0.5, "b": 0.5}}]
     with pytest.raises(TaskError, match=r"past ending in \[b\]"):
         Task.from_dict({"name": "deep", "symbols": ["a", "b"], "contexts": contexts})
+
+
+# ---- the response design and tasks that give no source ----------------------------------
+def test_response_defaults_to_guess_and_accepts_reaction(tmp_path: Path) -> None:
+    body = '[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n'
+    assert load_task(write(tmp_path, GOOD_HEAD + body)).response == "guess"
+    task = load_task(write(tmp_path, GOOD_HEAD + 'response = "reaction"\n' + body))
+    assert task.response == "reaction"
+    assert "response: reaction" in task.describe()
+
+
+@pytest.mark.parametrize("value", ['"press"', '["guess"]', "1"])
+def test_bad_response_names_the_key_and_line(tmp_path: Path, value: str) -> None:
+    path = write(tmp_path, GOOD_HEAD + f"response = {value}\n")
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    (problem,) = err.value.problems
+    assert (problem.column, problem.line) == ("response", 3)
+    assert "'guess', 'reaction'" in problem.message
+
+
+def test_task_without_contexts_gives_no_source(tmp_path: Path) -> None:
+    task = load_task(write(tmp_path, GOOD_HEAD + 'description = "own sequences"\n'))
+    assert not task.has_source and task.max_depth == 0 and task.n_symbols == 2
+    text = task.describe()
+    assert "source not given" in text and "entropy" not in text and "context" not in text
+    for call in (task.entropy_rate, lambda: task.sample(10, seed=0),
+                 lambda: task.next_proba(np.zeros(3, dtype=np.int64)),
+                 lambda: task.context_indices(np.zeros(3, dtype=np.int64)),
+                 lambda: task.context_of(["a"])):
+        with pytest.raises(TaskError, match="task 't' gives no source"):
+            call()
+    assert task.to_frame().empty
+
+
+def test_task_without_contexts_needs_two_symbols(tmp_path: Path) -> None:
+    with pytest.raises(TaskError, match="at least two"):
+        load_task(write(tmp_path, 'name = "t"\nsymbols = ["a"]\n'))
+
+
+def test_empty_contexts_list_is_refused(tmp_path: Path) -> None:
+    with pytest.raises(TaskError, match="leave it out"):
+        load_task(write(tmp_path, GOOD_HEAD + "contexts = []\n"))
+
+
+def test_shipped_task_without_source() -> None:
+    task = load_task("keypad-chase")
+    assert (task.response, task.has_source, task.n_symbols) == ("reaction", False, 4)
+
+
+# ---- regressions: values and shapes that used to pass or crash --------------------------
+@pytest.mark.parametrize("value", ["nan", "inf", "-inf", "+nan"])
+def test_non_finite_probability_is_refused(tmp_path: Path, value: str) -> None:
+    path = write(tmp_path, GOOD_HEAD + f'[[contexts]]\npast = []\nnext = {{ a = {value}, b = 0.75 }}\n')
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    (problem,) = err.value.problems
+    assert (problem.column, problem.line) == ("contexts[1].next", 5)
+    assert "finite number in [0, 1]" in problem.message
+
+
+def test_probability_above_one_is_refused_even_if_the_sum_is_one(tmp_path: Path) -> None:
+    path = write(tmp_path, GOOD_HEAD + '[[contexts]]\npast = []\nnext = { a = 1.5, b = -0.5 }\n')
+    with pytest.raises(TaskError, match=r"a = 1\.5, b = -0\.5 \(negative probability\)"):
+        load_task(path)
+
+
+@pytest.mark.parametrize("text,key,line", [
+    ('name = "t"\nsymbols = [["a"], ["b"]]\n', "symbols", 2),
+    (GOOD_HEAD + '[[contexts]]\npast = [["a"]]\nnext = {a = 0.5, b = 0.5}\n', "contexts[1].past", 4),
+    (GOOD_HEAD + '[[contexts]]\npast = [1]\nnext = {a = 0.5, b = 0.5}\n', "contexts[1].past", 4),
+])
+def test_nested_lists_are_one_line_errors(tmp_path: Path, text: str, key: str, line: int) -> None:
+    with pytest.raises(TaskError) as err:
+        load_task(write(tmp_path, text))
+    assert [(p.column, p.line) for p in err.value.problems][:1] == [(key, line)]
+    assert "\n" not in str(err.value)
+
+
+def test_semantic_errors_name_the_line_of_their_table(tmp_path: Path) -> None:
+    text = (GOOD_HEAD + "\n[[contexts]]\npast = [\"a\"]\nnext = {a = 0.5, b = 0.5}\n"
+            "\n[[contexts]]\n# the second one\npast = [\"b\"]\nnext = {a = 0.5, b = 0.6}\n")
+    with pytest.raises(TaskError) as err:
+        load_task(write(tmp_path, text))
+    (problem,) = err.value.problems
+    assert (problem.column, problem.line) == ("contexts[2].next", 11)
+    assert f"task.toml:11:" in str(problem)
+    dup = GOOD_HEAD + "[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n" * 2
+    with pytest.raises(TaskError) as err:
+        load_task(write(tmp_path, dup))
+    assert [(p.column, p.line) for p in err.value.problems] == [("contexts[2]", 6)]
+
+
+def test_toml_error_names_line_and_undecodable_byte_names_line(tmp_path: Path) -> None:
+    path = tmp_path / "task.toml"
+    path.write_bytes(b'name = "t"\n# caf\xe9\nsymbols = ["a", "b"]\n')
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    assert err.value.problems[0].line == 2 and "UTF-8" in str(err.value)
+
+
+def test_negative_zero_never_prints(tmp_path: Path) -> None:
+    path = write(tmp_path, GOOD_HEAD + "[[contexts]]\npast = []\nnext = {a = -0.0, b = 1.0}\n")
+    text = load_task(path).describe()
+    assert "-0" not in text
+    assert "entropy rate: 0.0000 bits per symbol" in text
+
+
+def test_counts_use_the_singular() -> None:
+    text = two_state(0.2, 0.6).describe()
+    assert "2 symbols" in text and "2 contexts" in text
+    assert "1 context," in load_task(TASKS / "compass-fair.toml").describe()

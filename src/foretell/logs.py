@@ -3,19 +3,23 @@
 from __future__ import annotations
 
 import csv
+import difflib
 import io
 import math
 import re
 from dataclasses import dataclass, field, replace
+from decimal import Decimal, InvalidOperation
 from pathlib import Path
-from typing import TYPE_CHECKING, Mapping
+from typing import TYPE_CHECKING, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
-from pandas.api.types import is_bool_dtype, is_numeric_dtype
+from pandas.api.types import (is_bool_dtype, is_float_dtype, is_integer_dtype,
+                              is_numeric_dtype)
 
 from .errors import LogError, Problem, UsageError
 from .labels import ALL
+from .text import plural
 
 if TYPE_CHECKING:
     from .tasks import Task
@@ -26,6 +30,8 @@ REQUIRED = ("participant", "block", "trial", "stimulus", "response")
 DERIVED = ("stimulus_idx", "response_idx", "missed", "rt_ok", "rt_flag")
 RT_FLAGS = ("", "missed", "no-rt", "fast", "slow", "mad")
 RT_UNITS = {"s": 1.0, "ms": 1e-3}
+MAX_INTEGER = 2**53 - 1
+"""The largest session, block or trial number accepted (the largest integer a float holds exactly)."""
 
 _DELIMITER_NAMES = {",": "commas", "\t": "tabs", ";": "semicolons", "|": "vertical bars"}
 _DELIMITER_OF_SUFFIX = {".csv": ",", ".tsv": "\t", ".tab": "\t"}
@@ -117,23 +123,24 @@ class ValidatedLog:
 
 def load_log(path: str | Path, task: Task, columns: Mapping[str, str] | None = None,
              rt_unit: str = "s", fix_labels: bool = False, *,
-             screen: RTScreen = RTScreen()) -> ValidatedLog:
+             screen: RTScreen = RTScreen(), measures: Sequence[str] = ()) -> ValidatedLog:
     """Return the validated, screened log (:class:`ValidatedLog`) of the response log at ``path``.
 
     CSV (``.csv``), TSV (``.tsv``, ``.tab``) or, for any other extension, text
     whose delimiter (comma, tab, semicolon, vertical bar) is detected; Parquet
     (``.parquet``, ``.pq``) when pyarrow is installed. See :func:`validate_log`
-    for ``columns``, ``rt_unit``, ``fix_labels``, ``screen`` and the result.
+    for ``columns``, ``rt_unit``, ``fix_labels``, ``screen``, ``measures`` and the result.
     Raises LogError listing every problem found, each with file, line, column.
     """
     path = Path(path)
     cells, lines = _read_table(path)
-    return _validate(cells, lines, task, str(path), columns, rt_unit, fix_labels, screen)
+    return _validate(cells, lines, task, str(path), columns, rt_unit, fix_labels, screen, measures)
 
 
 def validate_log(frame: pd.DataFrame, task: Task, source: str = "<frame>",
                  columns: Mapping[str, str] | None = None, rt_unit: str = "s",
-                 fix_labels: bool = False, *, screen: RTScreen = RTScreen()) -> ValidatedLog:
+                 fix_labels: bool = False, *, screen: RTScreen = RTScreen(),
+                 measures: Sequence[str] = ()) -> ValidatedLog:
     """Return the validated, screened log (:class:`ValidatedLog`) of an in-memory log ``frame``.
 
     ``columns`` maps canonical names (:data:`CANONICAL`) to the lab's own
@@ -145,16 +152,25 @@ def validate_log(frame: pd.DataFrame, task: Task, source: str = "<frame>",
     frame were a file with a header line.
 
     Rules: required columns are participant, block, trial, stimulus, response;
-    session defaults to 1. Within participant x session, trial numbers must
-    strictly increase in the order of the rows (a repeat is a duplicate, a
-    drop is out of order) and blocks must not decrease. An empty response is a
-    missed guess (kept, flagged); an empty or absent rt is no RT.
+    session defaults to 1. Session, block and trial are whole numbers below
+    2**53 in magnitude. Trials are ordered within participant x session by
+    block, then trial number, so both common numberings are accepted: trials
+    counted through the session (1..600) and trials that restart in every
+    block (1..120 in each); within a block the rows may come in any trial
+    order. Only a true duplicate (the same participant, session, block and
+    trial twice) is refused. Blocks must not decrease down the file within
+    participant x session. An empty response is a missed guess (kept, flagged); an empty or
+    absent rt is no RT. Ids and labels may not hold control characters.
+
+    ``measures`` names other numeric per-trial columns to carry over (e.g. a
+    single-trial EEG amplitude, for :func:`foretell.rt.analyse_rt`); their
+    cells must be numbers or empty (NaN).
 
     The result's ``frame`` is described in :class:`ValidatedLog`; other
     columns of the log are not carried over.
     """
     lines = np.arange(len(frame)) + 2
-    return _validate(frame, lines, task, source, columns, rt_unit, fix_labels, screen)
+    return _validate(frame, lines, task, source, columns, rt_unit, fix_labels, screen, measures)
 
 
 def screen_rt(log: ValidatedLog, screen: RTScreen = RTScreen()) -> ValidatedLog:
@@ -183,8 +199,8 @@ def screen_rt(log: ValidatedLog, screen: RTScreen = RTScreen()) -> ValidatedLog:
         mad_out, flat = _mad_outliers(frame["participant"].to_numpy(), rt, flag == "",
                                       screen.mad_k)
         flag[mad_out] = "mad"
-        warnings += [f"participant {p}: the MAD of their {n} log RT(s) is 0, so the MAD rule "
-                     "flags none of their trials" for p, n in flat.items()]
+        warnings += [f"participant {p}: the MAD of their {plural(n, 'log RT')} is 0, so the MAD "
+                     "rule flags none of their trials" for p, n in flat.items()]
     out = frame.copy()
     out["rt_ok"] = flag == ""
     out["rt_flag"] = pd.Series(flag, index=out.index, dtype="str")
@@ -235,6 +251,32 @@ def log_summary(log: ValidatedLog, totals: bool = True) -> pd.DataFrame:
     return table
 
 
+def unscorable(log: ValidatedLog, warmup: int) -> pd.DataFrame:
+    """Return the participants none of whose trials can be scored: columns participant, reason.
+
+    A trial is scored when its guess is not missed and it is at position
+    ``warmup`` or later of its session (positions count from 0 in the order of
+    block and trial; the first ``warmup`` trials of every session are warm-up,
+    as in the fits). Reasons: "every guess missed", or "no guess after the
+    first {warmup} trials of a session (warm-up)". A participant who always
+    guesses the same symbol is scorable.
+    """
+    if not isinstance(log, ValidatedLog):
+        raise UsageError("unscorable needs a validated log: use load_log or validate_log first")
+    if isinstance(warmup, bool) or not isinstance(warmup, (int, np.integer)) or warmup < 0:
+        raise UsageError(f"warmup must be a whole number of trials >= 0, got {warmup!r}")
+    frame = log.frame
+    position = frame.groupby(["participant", "session"], sort=False).cumcount().to_numpy()
+    guessed = ~frame["missed"].to_numpy(dtype=bool)
+    per = pd.DataFrame({"participant": frame["participant"], "guessed": guessed,
+                        "scored": guessed & (position >= warmup)}).groupby("participant").any()
+    lost = per[~per["scored"]]
+    reason = np.where(lost["guessed"], f"no guess after the first {int(warmup)} trials of a "
+                      "session (warm-up)", "every guess missed")
+    return pd.DataFrame({"participant": pd.array(lost.index.to_numpy(), dtype="str"),
+                         "reason": pd.array(reason, dtype="str")})
+
+
 # --- reading -----------------------------------------------------------------
 
 def _read_table(path: Path) -> tuple[pd.DataFrame, np.ndarray]:
@@ -245,41 +287,91 @@ def _read_table(path: Path) -> tuple[pd.DataFrame, np.ndarray]:
     if path.suffix.lower() in _PARQUET_SUFFIXES:
         return _read_parquet(path)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        raw = path.read_bytes()
     except FileNotFoundError:
         raise LogError(Problem("no such file", source)) from None
-    except UnicodeDecodeError as err:
-        raise LogError(Problem(f"not UTF-8 text (undecodable byte at offset {err.start}); "
-                               "save the log as UTF-8", source)) from None
     except OSError as err:
         raise LogError(Problem(f"cannot read the file: {err.strerror}", source)) from None
+    text = _decode(raw, source)
     delimiter = _delimiter(text, path.suffix.lower(), source)
     rows: list[list[str]] = []
-    lines: list[int] = []
+    spans: list[tuple[int, int]] = []  # first and last file line of each record
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
     start = 1
     try:
         for fields in reader:
             if any(f.strip() for f in fields):
                 rows.append(fields)
-                lines.append(start)
+                spans.append((start, reader.line_num))
             start = reader.line_num + 1
     except csv.Error as err:
-        raise LogError(Problem(f"unreadable as delimited text: {err}", source, start)) from None
+        why = (f"; most likely a quote opened on line {start} is never closed"
+               if "field larger" in str(err) else "")
+        raise LogError(Problem(f"unreadable as delimited text: {err}{why}", source, start)) from None
+    if not rows:
+        raise LogError(Problem("the header line has no column names (the lines hold only "
+                               f"{_DELIMITER_NAMES[delimiter]})", source, 1))
     header = rows[0]
     while len(header) > 1 and not header[-1].strip():
         header = header[:-1]
-    problems = [Problem("this column name appears more than once in the header", source, 1, name)
-                for name in sorted({h for h in header if header.count(h) > 1})]
     width = len(header)
-    for fields, line in zip(rows[1:], lines[1:]):
+    last_line = text.count("\n") + (not text.endswith("\n"))
+    problems = _quote_problems(rows, spans, width, delimiter, last_line, source)
+    if problems:
+        raise LogError(problems)
+    problems = [Problem("this column name appears more than once in the header", source,
+                        spans[0][0], name)
+                for name in sorted({h for h in header if header.count(h) > 1})]
+    for fields, (line, _) in zip(rows[1:], spans[1:]):
         if len(fields) < width or any(f.strip() for f in fields[width:]):
-            problems.append(Problem(f"this line has {len(fields)} fields but the header has "
-                                    f"{width}", source, line))
+            problems.append(Problem(f"this line has {plural(len(fields), 'field')} but the header "
+                                    f"has {width}", source, line))
     if problems:
         raise LogError(problems)
     cells = pd.DataFrame([f[:width] for f in rows[1:]], columns=header, dtype=object)
-    return cells, np.asarray(lines[1:], dtype=np.int64)
+    return cells, np.asarray([line for line, _ in spans[1:]], dtype=np.int64)
+
+
+def _decode(raw: bytes, source: str) -> str:
+    """Return the text of a UTF-8 file (a BOM is dropped), or raise LogError naming the line."""
+    head = raw[:4096]
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")) or (head and head.count(0) >= len(head) // 4):
+        raise LogError(Problem("the file looks UTF-16 (byte-order mark or NUL bytes between the "
+                               "characters): save it as UTF-8", source, 1))
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        offset = err.start + (3 if raw.startswith(b"\xef\xbb\xbf") else 0)
+        line = raw[:offset].count(b"\n") + 1
+        raise LogError(Problem(f"not UTF-8 text: byte 0x{raw[offset]:02x} on this line is not "
+                               "UTF-8 (the file may be Latin-1 or Windows-1252); save the log as "
+                               "UTF-8", source, line)) from None
+
+
+def _quote_problems(rows: list[list[str]], spans: list[tuple[int, int]], width: int,
+                    delimiter: str, last_line: int, source: str) -> list[Problem]:
+    """Return a problem for each record whose quoted field swallowed the lines after it.
+
+    The csv module reads an unclosed quote as one field running on to the next
+    quote or the end of the file. A field with a line break is taken for such a
+    field when it runs to the end of the file or when a line inside it holds a
+    whole record's worth of delimiters; a quoted note over two lines passes.
+    """
+    problems = []
+    for fields, (first, last) in zip(rows, spans):
+        for f in fields:
+            if "\n" not in f:
+                continue
+            swallowed = f.split("\n")[1:]
+            if (last >= last_line and len(fields) < width) or any(
+                    part.count(delimiter) >= max(width - 1, 1) for part in swallowed):
+                end = " (the end of the file)" if last >= last_line else ""
+                problems.append(Problem(
+                    f"unterminated quote starting on line {first}: the quoted field runs on to "
+                    f"line {last}{end}, swallowing {plural(last - first, 'line')}; close the "
+                    "quote or remove it", source, first))
+                break
+    return problems
 
 
 def _read_parquet(path: Path) -> tuple[pd.DataFrame, np.ndarray]:
@@ -376,18 +468,67 @@ class _Checker:
         return num, bad
 
     def integers(self, values: pd.Series, column: str, what: str) -> np.ndarray | None:
-        """Return the cells as integers, or None when some cell is empty or not an integer."""
-        num, bad = self.numbers(values, column, what)
-        empty = self.flag(np.isnan(num) & ~bad, column, f"{what} is empty")
-        fraction = self.flag(np.isfinite(num) & (num != np.round(num)), column, f"{what} must be a whole number")
-        return None if bad.any() or empty or fraction else num.astype(np.int64)
+        """Return the cells as int64, or None when some cell is empty, not whole or too large.
+
+        Whole numbers are read exactly (never through a float), so that a
+        number too large for float or int64 is refused instead of rounded or
+        wrapped; "3.0" and "1e3" are whole. Magnitudes of 2**53 and beyond are
+        refused (:data:`MAX_INTEGER`).
+        """
+        too_large = f"{what} number too large: {what} numbers must be below 2**53 in magnitude"
+        if is_integer_dtype(values) and not values.isna().any():
+            raw = values.to_numpy()
+            if self.flag((raw > MAX_INTEGER) | (raw < -MAX_INTEGER), column, too_large):
+                return None
+            return raw.astype(np.int64)
+        if is_float_dtype(values):  # whole floats below 2**53 are exact; the rest read as text
+            num = values.to_numpy(dtype=float, na_value=np.nan)
+            plain = np.isfinite(num) & (num == np.round(num)) & (np.abs(num) <= MAX_INTEGER)
+            out = np.where(plain, num, 0.0).astype(np.int64)
+            text = np.full(len(num), "", dtype=object)
+            for i in np.flatnonzero(~plain & ~np.isnan(num)):
+                text[i] = repr(float(num[i]))
+        else:
+            text = np.array([t.strip() for t in _text(values)], dtype=object)
+            plain = pd.Series(text, dtype=object).str.fullmatch(r"[+-]?\d{1,15}").to_numpy(dtype=bool)
+            out = np.zeros(len(text), dtype=np.int64)
+            out[plain] = np.array(text[plain].tolist(), dtype=np.int64) if plain.any() else 0
+        empty, bad, fraction, big = (np.zeros(len(text), dtype=bool) for _ in range(4))
+        for i in np.flatnonzero(~plain):
+            value = _exact_number(text[i])
+            if text[i].lower() in _MISSING_NUMBER:
+                empty[i] = True
+            elif value is None:
+                bad[i] = True
+            elif value.copy_abs() > MAX_INTEGER:
+                big[i] = True
+            elif value != value.to_integral_value():
+                fraction[i] = True
+            else:
+                out[i] = int(value)
+        if bad.any():
+            example = text[int(np.flatnonzero(bad)[0])]
+            hint = "; use a decimal point, not a comma" if re.fullmatch(r"-?\d+,\d+", example) else ""
+            self.flag(bad, column, f"{what} must be a number, got {example!r}{hint}")
+        self.flag(empty, column, f"{what} is empty")
+        self.flag(fraction, column, f"{what} must be a whole number")
+        self.flag(big, column, too_large)
+        return None if (bad | empty | fraction | big).any() else out
 
     def ids(self, values: pd.Series, column: str, what: str, fix: bool) -> np.ndarray | None:
-        """Return the cells as id strings, or None when some are empty or carry stray spaces."""
+        """Return the cells as id strings, or None when some are empty, carry stray spaces or
+        hold a control character."""
         text = _text(values)
         stripped = np.array([t.strip() for t in text], dtype=object)
-        ok = not self.flag(stripped == "", column, f"{what} is empty")
-        spaced = (stripped != text) & (stripped != "")
+        ok = not self.flag(_equals(stripped, ""), column, f"{what} is empty")
+        hidden = [_hidden_character(t) for t in stripped]
+        found = np.array([h is not None for h in hidden], dtype=bool)
+        if found.any():
+            ok = False
+            self.flag(found, column, f"{what} id holds the control character "
+                                     f"{hidden[int(np.flatnonzero(found)[0])]}: ids are written "
+                                     "into every output table; remove it")
+        spaced = (stripped != text) & ~_equals(stripped, "")
         if spaced.any() and fix:
             self.warnings.append(f"column '{column}': stray spaces removed from {what} ids "
                                  f"({self.at(spaced)})")
@@ -413,7 +554,7 @@ class _Checker:
         for raw in pd.unique(text):
             if raw in targets:
                 continue
-            rows = text == raw
+            rows = _equals(text, raw)
             match, why = _fix_of(raw, targets)
             if match is None:
                 unknown.append(raw)
@@ -429,21 +570,56 @@ class _Checker:
             self.warnings.append(f"column '{column}': label {raw!r} read as "
                                  f"{_show_target(match)} ({why}; {self.at(rows)})")
         if "" in unknown:
-            self.flag(text == "", column, "empty cell: every trial reveals a symbol")
+            self.flag(_equals(text, ""), column, "empty cell: every trial reveals a symbol")
             unknown.remove("")
+        for raw in [u for u in unknown if _hidden_character(u) is not None]:
+            self.flag(_equals(text, raw), column, f"label {raw!r} holds the control character "
+                                           f"{_hidden_character(raw)}; remove it")
+            unknown.remove(raw)
+            ok = False
         for raw in unknown[:_SHOW_LABELS]:
             hint = "; an empty cell marks a missed guess" if allow_missed else ""
-            self.flag(text == raw, column, f"unknown symbol {raw!r}: task '{task.name}' has "
+            self.flag(_equals(text, raw), column, f"unknown symbol {raw!r}: task '{task.name}' has "
                                            f"{', '.join(symbols)}{hint}")
         if len(unknown) > _SHOW_LABELS:
-            self.problems.append(Problem(f"and {len(unknown) - _SHOW_LABELS} more unknown "
-                                         "symbols", self.source, None, column))
+            more = plural(len(unknown) - _SHOW_LABELS, "more unknown symbol")
+            self.problems.append(Problem(f"and {more}", self.source, None, column))
         return (out, fixed) if ok and not unknown else None
+
+
+def _equals(text: np.ndarray, value: str) -> np.ndarray:
+    """Return the mask of the cells equal to ``value``, exactly.
+
+    Not ``text == value``: NumPy turns the string into a fixed-width scalar
+    that drops trailing NUL characters, so "a\\x00" would equal "a".
+    """
+    return pd.Series(text, dtype=object).eq(value).to_numpy(dtype=bool)
 
 
 def _text(values: pd.Series) -> np.ndarray:
     """Return the cells as an object array of strings, '' for missing cells."""
     return np.array(["" if _is_missing(v) else str(v) for v in values], dtype=object)
+
+
+def _exact_number(text: str) -> Decimal | None:
+    """Return the exact value of a number cell ("12", "3.0", "1e19"), None when it is no finite number.
+
+    :class:`decimal.Decimal` keeps every digit, so no large value is rounded
+    and no long one is expanded before it is compared.
+    """
+    try:
+        value = Decimal(text)
+    except InvalidOperation:
+        return None
+    return value if value.is_finite() else None
+
+
+def _hidden_character(text: str) -> str | None:
+    """Return the first control or other non-printing character of ``text`` as "U+0000", else None."""
+    for ch in text:
+        if not ch.isprintable():
+            return f"U+{ord(ch):04X}"
+    return None
 
 
 def _is_missing(value: object) -> bool:
@@ -467,7 +643,7 @@ def _show_target(target: str) -> str:
 
 
 def _resolve_columns(cells: pd.DataFrame, columns: Mapping[str, str] | None,
-                     check: _Checker) -> dict[str, str]:
+                     check: _Checker, measures: Sequence[str] = ()) -> dict[str, str]:
     """Return canonical name -> the log's column name, for the columns the log has."""
     columns = dict(columns or {})
     unknown = sorted(set(columns) - set(CANONICAL))
@@ -486,29 +662,47 @@ def _resolve_columns(cells: pd.DataFrame, columns: Mapping[str, str] | None,
         raise UsageError("column map reads " + ", ".join(f"'{c}' from '{names[c]}'" for c in used)
                          + ", which is itself a canonical column: map that one to another column too")
     present = {canon: name for canon, name in names.items() if name in cells.columns}
+    extra = [str(c) for c in cells.columns if c not in present.values()]
     for canon in REQUIRED:
         if canon in present:
             continue
         name = names[canon]
-        near = [c for c in cells.columns if str(c).strip().casefold() == name.casefold()]
-        hint = (f"; the log has {near[0]!r}: map it with columns={{'{canon}': {near[0]!r}}} "
-                f"(CLI: --map {canon}={near[0]})" if near else "")
+        near = ([c for c in extra if c.strip().casefold() == name.casefold()]
+                or difflib.get_close_matches(name, extra, n=1)
+                or difflib.get_close_matches(name.casefold(), [c.casefold() for c in extra], n=1))
+        if near and near[0] not in extra:  # a case-folded match: back to the log's spelling
+            near = [c for c in extra if c.casefold() == near[0]]
+        mine = near[0] if near else "<your column>"
+        hint = (f"; the closest is {near[0]!r}" if near else "")
         alias = f" (canonical '{canon}')" if name != canon else ""
-        check.problems.append(Problem(f"missing required column '{name}'{alias}{hint}",
-                                      check.source, 1, name))
-    extra = [str(c) for c in cells.columns if c not in present.values()]
+        check.problems.append(Problem(
+            f"missing required column '{name}'{alias}; the log has "
+            f"{', '.join(map(repr, map(str, cells.columns)))}{hint}: map a column with "
+            f"columns={{'{canon}': {mine!r}}} (CLI: --map {canon}={mine})",
+            check.source, 1, name))
     personal = [c for c in extra if _looks_identifying(c)]
     if personal:
-        check.warnings.append(f"column(s) {', '.join(map(repr, personal))} look like personal "
-                              "data: they were not loaded; do not share the file they came from")
-    ignored = [c for c in extra if c not in personal]
+        check.warnings.append(f"{_columns(personal)} {_verb(personal, 'looks', 'look')} like "
+                              f"personal data and {_verb(personal, 'was', 'were')} not loaded; do "
+                              "not share the file they came from")
+    ignored = [c for c in extra if c not in personal and c not in measures]
     if ignored:
-        check.warnings.append(f"column(s) {', '.join(map(repr, ignored))} are not part of the "
+        check.warnings.append(f"{_columns(ignored)} {_verb(ignored, 'is', 'are')} not part of the "
                               "log format and were ignored")
     if "participant" in present and _looks_identifying(present["participant"]):
         check.warnings.append(f"participant ids come from column '{present['participant']}', "
                               "which sounds identifying: use pseudonymous ids")
     return present
+
+
+def _columns(names: list[str]) -> str:
+    """Return "column 'a'" or "columns 'a', 'b'"."""
+    return ("column " if len(names) == 1 else "columns ") + ", ".join(map(repr, names))
+
+
+def _verb(items: object, singular: str, plural_form: str) -> str:
+    """Return the verb form that agrees with the number of ``items``."""
+    return singular if len(items) == 1 else plural_form
 
 
 def _looks_identifying(name: str) -> bool:
@@ -519,15 +713,28 @@ def _looks_identifying(name: str) -> bool:
 
 def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
               columns: Mapping[str, str] | None, rt_unit: str, fix_labels: bool,
-              screen: RTScreen) -> ValidatedLog:
+              screen: RTScreen, measures: Sequence[str] = ()) -> ValidatedLog:
     """Return the canonical, screened log of ``cells``, or raise LogError with every problem."""
     if rt_unit not in RT_UNITS:
         raise UsageError(f"rt_unit must be one of {', '.join(RT_UNITS)}, got {rt_unit!r}")
+    measures = tuple(measures)
+    clash = [m for m in measures if m in CANONICAL or m in DERIVED]
+    if clash:
+        raise UsageError(f"measure column(s) {', '.join(map(repr, clash))} would shadow a column "
+                         "foretell computes or reads: rename them")
     check = _Checker(source, lines)
     if len(cells) == 0:
         raise LogError(Problem("the log has a header but no data rows", source, 1))
     cells = cells.reset_index(drop=True)
-    name = _resolve_columns(cells, columns, check)
+    name = _resolve_columns(cells, columns, check, measures)
+    extra_values = {}
+    for m in measures:
+        if m not in cells.columns:
+            check.problems.append(Problem(f"missing measure column '{m}'; the log has "
+                                          f"{', '.join(map(repr, map(str, cells.columns)))}",
+                                          source, 1, m))
+        else:
+            extra_values[m] = check.numbers(cells[m], m, m)[0]
 
     def col(canon: str) -> pd.Series:
         return cells[name[canon]]
@@ -579,6 +786,7 @@ def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
              "stimulus": pd.array(stimulus, dtype="str"),
              "response": pd.array(np.where(missed, None, response), dtype="str"), "rt": rt}
     data |= {c: times[c] for c in ("onset", "reveal_onset") if c in times}
+    data |= extra_values
     data |= {"stimulus_idx": np.array([index[s] for s in stimulus], dtype=np.int64),
              "response_idx": np.array([index.get(r, -1) for r in response], dtype=np.int64),
              "missed": missed}
@@ -587,7 +795,7 @@ def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
     fixed_rows = stim_fixed | resp_fixed
     labels_fixed = {str(p): int(n) for p, n in
                     pd.Series(fixed_rows).groupby(part).sum().items() if n}
-    frame = frame.iloc[np.lexsort((frame["trial"], frame["session"], part))]
+    frame = frame.iloc[np.lexsort((frame["trial"], frame["block"], frame["session"], part))]
     frame = frame.reset_index(drop=True)
     log = ValidatedLog(frame, task, source, rt_unit, screen, tuple(check.warnings),
                        labels_fixed=labels_fixed)
@@ -596,16 +804,13 @@ def _validate(cells: pd.DataFrame, lines: np.ndarray, task: Task, source: str,
 
 def _check_order(check: _Checker, part: np.ndarray, session: np.ndarray,
                  ints: dict[str, np.ndarray | None], name: dict[str, str]) -> None:
-    """Flag trials that do not strictly increase, and blocks that decrease, in file order."""
+    """Flag repeated (participant, session, block, trial) rows, and blocks that decrease in file order."""
     keys = [pd.Series(part), pd.Series(session)]
-    if ints.get("trial") is not None:
-        trial = pd.Series(ints["trial"])
-        repeat = pd.DataFrame({"p": part, "s": session, "t": trial}).duplicated().to_numpy()
-        drop = (trial.groupby(keys, sort=False).diff() < 0).to_numpy() & ~repeat
+    if ints.get("trial") is not None and ints.get("block") is not None:
+        repeat = pd.DataFrame({"p": part, "s": session, "b": ints["block"],
+                               "t": ints["trial"]}).duplicated().to_numpy()
         check.flag(repeat, name["trial"], "trial number repeats an earlier trial of the same "
-                   "participant and session")
-        check.flag(drop, name["trial"], "trial number is lower than the one before it for the "
-                   "same participant and session: trials must increase down the file")
+                   "participant, session and block")
     if ints.get("block") is not None:
         block = pd.Series(ints["block"])
         check.flag((block.groupby(keys, sort=False).diff() < 0).to_numpy(), name["block"],
@@ -620,8 +825,9 @@ def _read_warnings(check: _Checker, frame: pd.DataFrame, name: dict[str, str],
     has_rt = ~np.isnan(rt)
     missed_rt = frame["missed"].to_numpy() & has_rt
     if missed_rt.any():
-        check.warnings.append(f"column '{name['rt']}': {int(missed_rt.sum())} missed guess(es) "
-                              f"carry an RT, which is ignored ({check.at(missed_rt)})")
+        n = int(missed_rt.sum())
+        check.warnings.append(f"column '{name['rt']}': {plural(n, 'missed guess')} "
+                              f"{'carries' if n == 1 else 'carry'} an RT, which is ignored ({check.at(missed_rt)})")
     if not has_rt.any():
         check.warnings.append("no reaction times in this log: RT analyses will be skipped")
     elif rt_unit == "s" and np.median(rt[has_rt]) > _MS_SUSPECT:

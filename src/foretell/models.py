@@ -81,6 +81,9 @@ def parse_model(model_id: str, task: Task, free: Iterable[str] = ()) -> ModelSpe
         extra = extra + ("leak",) if leaky else extra
         signature: tuple = ("count", depth)
     elif model_id == "count-task":
+        if not task.has_source:
+            raise UsageError(f"model 'count-task' counts on the task's own contexts, and task "
+                             f"{task.name!r} gives none")
         depth, factory = task.max_depth, partial(TaskCounting, task)
         tunable, defaults = LEARNER_PARAMS, fixed_leak
         full = len(task.contexts) == task.n_symbols ** depth and all(len(c) == depth for c in task.contexts)
@@ -131,6 +134,11 @@ def model_specs(models: Sequence[str | ModelSpec] | None, task: Task,
         raise UsageError(f"models listed twice (ids are compared after normalising, e.g. "
                          f"count-01 is count-1): {', '.join(twice)}")
     return specs
+
+
+def default_warmup(task: Task) -> int:
+    """Return the warm-up of the default model set: its largest context depth (see :func:`default_models`)."""
+    return max(parse_model(m, task).depth for m in default_models(task))
 
 
 def default_models(task: Task) -> list[str]:

@@ -36,6 +36,7 @@ class Param:
     start: float
     log_scale: bool
     meaning: str
+    unit: str
 
     def contains(self, value: float) -> bool:
         """Return whether ``value`` is a finite number inside the domain."""
@@ -60,13 +61,13 @@ class Param:
 
 PARAMS: dict[str, Param] = {p.name: p for p in (
     Param("inv_temp", "choice", (0.0, math.inf), True, True, 0.01, 50.0, 1.0, True,
-          "inverse temperature of the softmax choice rule (1 = probability matching)"),
+          "inverse temperature of the softmax choice rule (1 = probability matching)", "no unit"),
     Param("lapse", "choice", (0.0, 1.0), False, False, 1e-4, 0.5, 0.05, True,
-          "share of guesses made at random, whatever the prediction"),
+          "share of guesses made at random, whatever the prediction", "share of guesses"),
     Param("leak", "learner", (0.0, 1.0), False, True, 0.0, 0.95, 0.1, False,
-          "share of every count forgotten after each trial"),
+          "share of every count forgotten after each trial", "share forgotten per trial"),
     Param("alpha", "learner", (0.0, math.inf), True, True, 0.01, 10.0, 0.5, True,
-          "Dirichlet prior count per symbol (0.5: Krichevsky-Trofimov)"),
+          "Dirichlet prior count per symbol (0.5: Krichevsky-Trofimov)", "prior count per symbol"),
 )}
 CHOICE_PARAMS = tuple(n for n, p in PARAMS.items() if p.role == "choice")
 LEARNER_PARAMS = tuple(n for n, p in PARAMS.items() if p.role == "learner")

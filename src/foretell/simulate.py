@@ -17,11 +17,11 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 import pandas as pd
 
-from foretell.choice import choice_proba
+from foretell.choice import choice_proba, sample_choices
 from foretell.errors import UsageError
 from foretell.params import PARAMS
 from foretell.learners.base import Learner, check_hyper
-from foretell.models import parse_model
+from foretell.models import normalise_model_id, parse_model
 from foretell.tasks import Task
 
 
@@ -68,6 +68,10 @@ class RTLaw:
         return {f"rt_{k}": v for k, v in asdict(self).items()}
 
 
+DEFAULT_LEAK_RANGE = (0.05, 0.4)
+"""Leak drawn for count-K-leak participants unless a range is given (forgetting 5-40% per trial)."""
+
+
 @dataclass(frozen=True)
 class ParticipantSpec:
     """How to draw a simulated participant: a model identifier and its parameter ranges.
@@ -75,28 +79,37 @@ class ParticipantSpec:
     ``model`` is one of the fitter's identifiers (count-K, count-K-leak,
     count-task, mix-D, source; see :func:`foretell.models.parse_model`).
     inv_temp, lapse and leak are drawn uniformly from their (low, high)
-    ranges for each participant (leak only for count-K-leak models; give
-    (v, v) to fix a value); alpha is fixed.
+    ranges for each participant (give (v, v) to fix a value); alpha is fixed.
+    leak applies to count-K-leak models only: ``None`` means
+    :data:`DEFAULT_LEAK_RANGE` for them, and a leaky model needs a range
+    above 0 (with leak 0 it would be the model without leak, not the one the
+    truth table names).
     """
 
     model: str
     inv_temp: tuple[float, float] = (0.5, 4.0)
     lapse: tuple[float, float] = (0.01, 0.06)
-    leak: tuple[float, float] = (0.0, 0.0)
+    leak: tuple[float, float] | None = None
     alpha: float = 0.5
     rt: RTLaw = field(default_factory=RTLaw)
     miss_rate: float = 0.02
 
     def __post_init__(self) -> None:
+        leaky = normalise_model_id(self.model).endswith("-leak")
+        if self.leak is None:
+            object.__setattr__(self, "leak", DEFAULT_LEAK_RANGE if leaky else (0.0, 0.0))
         for name, (low, high), top in (("inv_temp", self.inv_temp, 1e3), ("lapse", self.lapse, 1.0),
                                        ("leak", self.leak, 1.0)):
             check_hyper(f"ParticipantSpec {name} low", low, 0.0, top)
             check_hyper(f"ParticipantSpec {name} high", high, low, top)
         if self.leak[1] >= 1.0:
             raise UsageError(f"ParticipantSpec leak must stay below 1, got range {self.leak}")
-        if self.leak[1] > 0 and not self.model.endswith("-leak"):
+        if self.leak[1] > 0 and not leaky:
             raise UsageError(f"ParticipantSpec {self.model!r}: a leak range {self.leak} needs a "
                              "count-K-leak model")
+        if leaky and self.leak[0] <= 0:
+            raise UsageError(f"ParticipantSpec {self.model!r}: a leaky model needs a leak range "
+                             f"above 0 (with leak 0 it is the model without leak), got {self.leak}")
         PARAMS["alpha"].check(self.alpha, "ParticipantSpec")
         check_hyper("ParticipantSpec miss_rate", self.miss_rate, 0.0, 1.0, high_open=True)
 
@@ -104,7 +117,7 @@ class ParticipantSpec:
         """Return a learner and the drawn parameters (truth-table columns) for one participant."""
         spec = parse_model(self.model, task)
         values = {"inv_temp": rng.uniform(*self.inv_temp), "lapse": rng.uniform(*self.lapse)}
-        leak = rng.uniform(*self.leak) if "leak" in spec.tunable else math.nan
+        leak = float(rng.uniform(*self.leak)) if "leak" in spec.tunable else math.nan
         alpha = self.alpha if "alpha" in spec.tunable else math.nan
         learner = spec.learner(**{k: v for k, v in (("alpha", alpha), ("leak", leak))
                                   if k in spec.tunable})
@@ -139,8 +152,7 @@ def simulate_participant(task: Task, learner: Learner, inv_temp: float, lapse: f
     x = task.sample(int(n_trials), seed=rng)
     pred = learner.next_proba(x, m)
     guess_p = choice_proba(pred, inv_temp, lapse)
-    u = rng.random(n_trials)
-    response = np.minimum((np.cumsum(guess_p, axis=1) < u[:, None]).sum(axis=1), m - 1)
+    response = sample_choices(guess_p, rng.random(n_trials))
     with np.errstate(divide="ignore", invalid="ignore"):
         entropy = -np.where(pred > 0, pred * np.log2(pred), 0.0).sum(axis=1)
     block = np.arange(n_trials) // block_length + 1

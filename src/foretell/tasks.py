@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import importlib.resources
 import math
+import re
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
@@ -16,12 +17,19 @@ from scipy.sparse.linalg import spsolve
 
 from .errors import Problem, TaskError
 from .labels import context_label, symbol_label_problem
+from .text import number, plural
 
 if TYPE_CHECKING:
     import pandas as pd
 
 PROB_TOL = 1e-9
 MAX_CHAIN_STATES = 2_000_000  # pasts of maximal depth the entropy-rate chain may hold
+RESPONSES = {
+    "guess": "a guess of the next symbol before it is shown, RT from the guess prompt",
+    "reaction": "a press of the key of the symbol just shown (serial reaction time), "
+                "RT from stimulus onset",
+}
+"""The response designs a task file may declare with ``response = ...``, and what each means."""
 
 
 @dataclass(frozen=True)
@@ -61,8 +69,12 @@ class Task:
 
     ``contexts[i]`` is a context as symbol indices, oldest first (``()`` is
     the root of a memoryless source) and ``next_probs[i]`` its next-symbol
-    distribution. Use :func:`load_task` or :meth:`from_dict` to build one:
-    both validate.
+    distribution. A task without contexts gives only the alphabet (the source
+    is not given, e.g. every participant saw their own sequence): then
+    ``has_source`` is False, ``max_depth`` is 0, and the methods that need the
+    source raise TaskError. ``response`` is the design (see :data:`RESPONSES`):
+    "guess" (the default) or "reaction". Use :func:`load_task` or
+    :meth:`from_dict` to build one: both validate.
     """
 
     name: str
@@ -72,11 +84,13 @@ class Task:
     description: str = ""
     block_length: int | None = None
     path: str | None = None
+    response: str = "guess"
     _lookup: dict[tuple[int, ...], int] = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "_lookup", {c: i for i, c in enumerate(self.contexts)})
-        probs = np.array(self.next_probs, dtype=float)
+        probs = np.array(self.next_probs, dtype=float).reshape(len(self.contexts), len(self.symbols))
+        probs += 0.0  # a negative zero prints as "-0.0"
         probs.setflags(write=False)
         object.__setattr__(self, "next_probs", probs)
 
@@ -99,8 +113,14 @@ class Task:
 
     @property
     def max_depth(self) -> int:
-        """Return the length of the longest context."""
-        return max(len(c) for c in self.contexts)
+        """Return the length of the longest context (0 when the source is not given)."""
+        return max((len(c) for c in self.contexts), default=0)
+
+    def _require_source(self, what: str) -> None:
+        """Raise TaskError when the task gives no source, saying what needed it."""
+        if not self.has_source:
+            raise TaskError(f"task {self.name!r} gives no source: {what} needs its [[contexts]]",
+                            path=self.path)
 
     def index_of(self, symbol: str) -> int:
         """Return the index of a symbol label; raise TaskError if it is not in the alphabet."""
@@ -125,6 +145,7 @@ class Task:
     # -- the source ---------------------------------------------------------------
     def context_of(self, past: Sequence[int] | Sequence[str]) -> int:
         """Return the index of the context that is a suffix of ``past`` (oldest first)."""
+        self._require_source("finding the context of a past")
         idx = [self.index_of(s) if isinstance(s, str) else int(s) for s in past]
         for d in range(min(len(idx), self.max_depth) + 1):
             key = tuple(idx[len(idx) - d:])
@@ -138,6 +159,7 @@ class Task:
 
         Entry t is -1 where x[:t] is too short to determine a context.
         """
+        self._require_source("the context of each trial")
         x = np.asarray(x, dtype=np.int64)
         n, d = len(x), self.max_depth
         lagged = np.full((n, d), -1, dtype=np.int64)  # column j: the symbol j+1 trials back
@@ -176,6 +198,7 @@ class Task:
 
     def next_proba(self, x: np.ndarray) -> np.ndarray:
         """Return the true probabilities of x[t] given x[:t], shape (len(x), m); 1/m rows where undetermined."""
+        self._require_source("the true next-symbol probabilities")
         ctx = self.context_indices(x)
         out = np.full((len(ctx), self.n_symbols), 1.0 / self.n_symbols)
         known = ctx >= 0
@@ -191,6 +214,7 @@ class Task:
         among recurrent classes in proportion to nothing: the class is drawn
         uniformly when there are several).
         """
+        self._require_source("sampling a stimulus sequence")
         rng = np.random.default_rng(seed)
         d = self.max_depth
         if initial is None:
@@ -220,6 +244,7 @@ class Task:
         2006, Theorem 4.2.4, applied to the D-th order chain). Recurrent classes
         are the strongly connected components with no edge leaving them.
         """
+        self._require_source("the entropy rate")
         states, trans = self._past_chain()
         n_comp, labels = connected_components(trans, directed=True, connection="strong")
         coo = trans.tocoo()
@@ -250,28 +275,36 @@ class Task:
         return table
 
     def describe(self) -> str:
-        """Return a short plain-text account of the task: alphabet, contexts, entropy rate."""
-        lines = [f"task {self.name!r}: {self.n_symbols} symbols ({', '.join(self.symbols)}), "
-                 f"{len(self.contexts)} contexts, longest {self.max_depth}"
+        """Return a short plain-text account of the task: alphabet, response, contexts, entropy rate."""
+        source = (f"{plural(len(self.contexts), 'context')}, longest {self.max_depth}"
+                  if self.has_source else "source not given")
+        lines = [f"task {self.name!r}: {plural(self.n_symbols, 'symbol')} "
+                 f"({', '.join(self.symbols)}), {source}"
                  + (f", {self.block_length} trials per block" if self.block_length else "")]
         if self.description:
             lines.append(self.description)
-        lines += ["", self.to_frame().to_string(index=False), ""]
+        lines.append(f"response: {self.response}, {RESPONSES[self.response]}")
+        if not self.has_source:
+            return "\n".join(lines)
+        table = self.to_frame()
+        probs = [f"p_{s}" for s in self.symbols]
+        table[probs] = table[probs].map(lambda v: number(v, "g"))
+        lines += ["", table.to_string(index=False), ""]
         try:
             rate = self.entropy_rate()
         except TaskError as err:
             lines.append(f"entropy rate not computed: {err}")
             return "\n".join(lines)
         if rate.irreducible:
-            lines.append(f"entropy rate: {rate.bits:.4f} bits per symbol "
-                         f"(maximum {math.log2(self.n_symbols):.4f})")
+            lines.append(f"entropy rate: {number(rate.bits)} bits per symbol "
+                         f"(maximum {number(math.log2(self.n_symbols))})")
         else:
             lines.append(f"the source has {len(rate.classes)} recurrent classes; the entropy "
                          "rate depends on where it starts:")
             for c in rate.classes:
                 pasts = ", ".join(self.context_label(p) for p in c.pasts[:6])
                 more = " ..." if len(c.pasts) > 6 else ""
-                lines.append(f"  pasts {pasts}{more}: {c.entropy_rate_bits:.4f} bits per symbol")
+                lines.append(f"  pasts {pasts}{more}: {number(c.entropy_rate_bits)} bits per symbol")
         return "\n".join(lines)
 
     # -- helpers ------------------------------------------------------------------
@@ -333,34 +366,43 @@ def load_task(path: str | Path) -> Task:
 
     ``path`` is a file, or the name of a task shipped with foretell (e.g.
     ``"lantern-relay"``, see :func:`shipped_tasks`) when no such file exists.
+    Problems name the file, the key and, where it can be found, the line.
     """
     p = Path(path)
     if not p.exists() and p.parent == Path(".") and p.stem in shipped_tasks():
         p = shipped_tasks()[p.stem]
     try:
-        with p.open("rb") as fh:
-            data = tomllib.load(fh)
+        raw = p.read_bytes()
     except FileNotFoundError:
         names = ", ".join(shipped_tasks()) or "none"
         raise TaskError(f"task file not found (tasks shipped with foretell: {names})",
                         path=str(p)) from None
-    except tomllib.TOMLDecodeError as exc:
-        line = _toml_error_line(str(exc))
-        raise TaskError(f"not valid TOML: {exc}", path=str(p), line=line) from None
-    except UnicodeDecodeError as exc:
-        raise TaskError(f"not UTF-8 text (byte {exc.start}): a task file is TOML",
-                        path=str(p)) from None
     except OSError as exc:
         raise TaskError(f"cannot read the task file: {exc.strerror or exc}", path=str(p)) from None
-    return _parse_task(data, str(p))
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise TaskError("not UTF-8 text: a task file is TOML; save it as UTF-8", path=str(p),
+                        line=raw[:exc.start].count(b"\n") + 1) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise TaskError(f"not valid TOML: {exc}", path=str(p),
+                        line=_toml_error_line(str(exc))) from None
+    return _parse_task(data, str(p), text)
 
 
 # -- validation ---------------------------------------------------------------------
-def _parse_task(data: dict[str, Any], path: str | None) -> Task:
+def _parse_task(data: dict[str, Any], path: str | None, text: str | None = None) -> Task:
+    """Return the task of a parsed task file, or raise TaskError with every problem found.
+
+    ``text`` is the file's text, used to name the line of each problem.
+    """
     problems: list[Problem] = []
+    line_of = _KeyLines(text)
 
     def bad(msg: str, key: str | None = None) -> None:
-        problems.append(Problem(msg, path=path, column=key))
+        problems.append(Problem(msg, path=path, line=line_of(key), column=key))
 
     name = data.get("name")
     if not isinstance(name, str) or not name.strip():
@@ -375,20 +417,31 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
                                      or block_length < 1):
         bad(f"'block_length' must be a positive whole number, got {block_length!r}", "block_length")
         block_length = None
+    response = data.get("response", "guess")
+    if not isinstance(response, str) or response not in RESPONSES:
+        bad(f"'response' must be one of {', '.join(map(repr, RESPONSES))}, got {response!r}",
+            "response")
+        response = "guess"
     symbols = data.get("symbols")
     if not isinstance(symbols, list) or len(symbols) < 2:
         bad("'symbols' must be a list of at least two labels", "symbols")
         raise TaskError(problems)
+    if not all(isinstance(s, str) for s in symbols):
+        bad(f"'symbols' must be a list of text labels, e.g. [\"up\", \"down\"]; got {symbols!r}",
+            "symbols")
+        raise TaskError(problems)
     for s in symbols:
         if (why := symbol_label_problem(s)) is not None:
-            bad(why,
-                "symbols")
+            bad(why, "symbols")
+    if problems:
+        raise TaskError(problems)
     if len(set(symbols)) != len(symbols):
         dupes = sorted({s for s in symbols if symbols.count(s) > 1})
-        bad(f"symbol labels must be unique; repeated: {', '.join(map(str, dupes))}", "symbols")
-    raw_contexts = data.get("contexts")
-    if not isinstance(raw_contexts, list) or not raw_contexts:
-        bad("at least one [[contexts]] table is required", "contexts")
+        bad(f"symbol labels must be unique; repeated: {', '.join(dupes)}", "symbols")
+    raw_contexts = data.get("contexts", [])
+    if "contexts" in data and (not isinstance(raw_contexts, list) or not raw_contexts):
+        bad("'contexts' must be one or more [[contexts]] tables; leave it out when the task "
+            "does not give the source", "contexts")
     if problems:
         raise TaskError(problems)
 
@@ -402,12 +455,12 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
             continue
         past, nxt = ctx.get("past"), ctx.get("next")
         label = f"{key} (past = {past!r})"
-        if not isinstance(past, list):
-            bad(f"{label}: 'past' must be a list of symbols (oldest first)", f"{key}.past")
+        if not isinstance(past, list) or not all(isinstance(s, str) for s in past):
+            bad(f"{label}: 'past' must be a list of symbol labels (oldest first)", f"{key}.past")
             continue
         unknown = [s for s in past if s not in index]
         if unknown:
-            bad(f"{label}: unknown symbol(s) {', '.join(map(repr, unknown))} in 'past'", f"{key}.past")
+            bad(f"{label}: unknown {_symbols(unknown)} in 'past'", f"{key}.past")
             continue
         if not isinstance(nxt, dict):
             bad(f"{label}: 'next' must be a table of symbol = probability", f"{key}.next")
@@ -415,7 +468,7 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
         unknown = [s for s in nxt if s not in index]
         missing = [s for s in symbols if s not in nxt]
         if unknown:
-            bad(f"{label}: unknown symbol(s) {', '.join(map(repr, unknown))} in 'next'", f"{key}.next")
+            bad(f"{label}: unknown {_symbols(unknown)} in 'next'", f"{key}.next")
         if missing:
             bad(f"{label}: 'next' gives no probability for {', '.join(map(repr, missing))}",
                 f"{key}.next")
@@ -425,8 +478,12 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
         if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in vals):
             bad(f"{label}: probabilities must be numbers", f"{key}.next")
             continue
-        if any(v < 0 for v in vals):
-            bad(f"{label}: negative probability", f"{key}.next")
+        outside = [f"{s} = {v!r}" for s, v in zip(symbols, vals)
+                   if not (math.isfinite(v) and 0 <= v <= 1)]
+        if outside:
+            negative = " (negative probability)" if any(v < 0 for v in vals) else ""
+            bad(f"{label}: {', '.join(outside)}{negative}: every probability must be a finite "
+                "number in [0, 1]", f"{key}.next")
             continue
         if abs(sum(vals) - 1.0) > PROB_TOL:
             bad(f"{label}: probabilities sum to {sum(vals):.12g}, not 1 (tolerance {PROB_TOL})",
@@ -436,12 +493,51 @@ def _parse_task(data: dict[str, Any], path: str | None) -> Task:
         rows.append([float(v) for v in vals])
     if problems:
         raise TaskError(problems)
-    problems.extend(_tree_problems(contexts, symbols, path))
+    problems.extend(replace(p, line=line_of(p.column)) for p in _tree_problems(contexts, symbols, path))
     if problems:
         raise TaskError(problems)
     return Task(name=name, symbols=tuple(symbols), contexts=tuple(contexts),
-                next_probs=np.array(rows), description=description,
-                block_length=block_length, path=path)
+                next_probs=np.array(rows, dtype=float).reshape(len(rows), len(symbols)),
+                description=description, block_length=block_length, path=path,
+                response=response)
+
+
+class _KeyLines:
+    """The line of a task-file key in the file's text: best effort, None when not found.
+
+    Keys are top-level names ("symbols"), "contexts[k]" (the k-th
+    ``[[contexts]]`` table) or "contexts[k].past" / "contexts[k].next".
+    """
+
+    _TABLE = re.compile(r"\s*\[")
+    _CONTEXTS = re.compile(r"\s*\[\[\s*contexts\s*\]\]")
+
+    def __init__(self, text: str | None) -> None:
+        self.lines = text.splitlines() if text else []
+
+    def __call__(self, key: str | None) -> int | None:
+        if key is None or not self.lines:
+            return None
+        match = re.fullmatch(r"contexts\[(\d+)\](?:\.(\w+))?", key)
+        if match is None:
+            return self._assignment(key.split(".", 1)[0], 0)
+        tables = [i for i, line in enumerate(self.lines) if self._CONTEXTS.match(line)]
+        k = int(match.group(1))
+        if len(tables) < k:  # contexts written as an inline array: the line of 'contexts ='
+            return self._assignment("contexts", 0)
+        start = tables[k - 1]
+        inner = self._assignment(match.group(2), start + 1) if match.group(2) else None
+        return inner or start + 1
+
+    def _assignment(self, key: str, start: int) -> int | None:
+        """Return the line of ``key = ...`` in the table that begins at line index ``start``."""
+        pattern = re.compile(rf"\s*(?:{re.escape(key)}|\"{re.escape(key)}\")\s*=")
+        for i in range(start, len(self.lines)):
+            if self._TABLE.match(self.lines[i]):
+                return None
+            if pattern.match(self.lines[i]):
+                return i + 1
+        return None
 
 
 def _tree_problems(contexts: list[tuple[int, ...]], symbols: list[str],
@@ -498,7 +594,7 @@ def _entropy_bits(probs: np.ndarray) -> np.ndarray:
     p = np.asarray(probs, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
         terms = np.where(p > 0, -p * np.log2(p), 0.0)
-    return terms.sum(axis=-1)
+    return terms.sum(axis=-1) + 0.0  # -p log p of p = 1 is a negative zero
 
 
 def _stationary(trans: sparse.csr_matrix) -> np.ndarray:
@@ -517,6 +613,11 @@ def _stationary(trans: sparse.csr_matrix) -> np.ndarray:
     pi = spsolve(a.tocsc(), b)
     pi = np.clip(np.atleast_1d(pi), 0.0, None)
     return pi / pi.sum()
+
+
+def _symbols(labels: list[str]) -> str:
+    """Return "symbol 'a'" or "symbols 'a', 'b'"."""
+    return ("symbol " if len(labels) == 1 else "symbols ") + ", ".join(map(repr, labels))
 
 
 def _toml_error_line(message: str) -> int | None:
