@@ -19,15 +19,23 @@ MODELS = ["count-0", "count-1", "count-2", "count-0-leak", "mix-3", "source"]
 
 CONTRACT = {
     "fits": ["participant", "group", "model", "loglik", "n_params", "n_trials", "aic", "bic",
-             "cv_loglik", "inv_temp", "lapse", "converged"],
-    "blocks": ["participant", "group", "block", "model", "loglik", "n_trials", "inv_temp", "lapse"],
-    "winners": ["participant", "group", "block", "best_model", "criterion", "delta_bic", "clear"],
-    "selection": ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor"],
+             "cv_loglik", "inv_temp", "lapse", "converged", "message", "at_bound"],
+    "blocks": ["participant", "group", "session", "block", "model", "n_trials", "n_params",
+               "loglik_session", "loglik_block", "bic_block", "cv_loglik_block", "inv_temp_block",
+               "lapse_block", "converged", "cv_converged", "message"],
+    "winners": ["participant", "group", "block", "best_model", "runner_up", "criterion", "delta",
+                "strength"],
+    "selection": ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor",
+                  "freq_concentration", "method", "note"],
     "selection_blocks": ["group", "block", "model", "expected_freq", "exceedance",
                          "protected_exceedance", "bor"],
     "families": ["group", "family", "expected_freq", "exceedance", "protected_exceedance", "bor"],
     "families_blocks": ["group", "block", "family", "expected_freq", "protected_exceedance", "bor"],
-    "contexts": ["participant", "block", "context", "n_obs", "leaf_prob", "in_source_tree"],
+    "contexts": ["participant", "block", "context", "n_obs", "leaf_prob", "in_source_tree", "model",
+                 "expected_leaf_prob"],
+    "context_agreement": ["participant", "block", "source_context", "status", "response_leaf",
+                          "expected_status_share", "beyond_model"],
+    "excluded": ["participant", "group", "reason"],
 }
 
 

@@ -38,3 +38,14 @@ def test_log_space_survives_extreme_inverse_temperature() -> None:
     out = choice_log_proba(pred, 50.0, 1e-4)
     assert np.all(np.isfinite(out))
     assert out[0, 0] == pytest.approx(np.log(1e-4 / 2), rel=1e-6)
+
+
+def test_sample_choices_inverts_the_cumulative_distribution():
+    # inverse-CDF sampling (common practice): u below the first cut gives symbol 0, and so on
+    from foretell.choice import sample_choices
+
+    proba = np.array([[0.2, 0.5, 0.3], [1.0, 0.0, 0.0]])
+    u = np.array([[0.1, 0.99], [0.25, 0.5], [0.69, 0.0], [0.71, 0.999999]])
+    assert sample_choices(proba, u).tolist() == [[0, 0], [1, 0], [1, 0], [2, 0]]
+    draws = sample_choices(proba[:1], np.random.default_rng(0).random((20_000, 1)))[:, 0]
+    assert np.allclose(np.bincount(draws, minlength=3) / 20_000, proba[0], atol=0.015)

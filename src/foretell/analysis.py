@@ -3,17 +3,21 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import partial
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
 
 import pandas as pd
 
 from . import compare
-from .contexts import context_agreement, context_report
+from .contexts import DEFAULT_REPLICATES, context_agreement, context_report
 from .fitting import fit_participants
+from .errors import UsageError
+from .labels import ALL
 from .logs import ValidatedLog, load_log, validate_log
-from .models import ModelSpec
+from .learners.mixture import MAX_TREE_DEPTH
+from .models import ModelSpec, model_specs
+from .summaries import convergence_text, summary_text
+from .text import plural
 from .tasks import Task, load_task
 
 
@@ -26,8 +30,11 @@ class FitResult:
     participant, overall (block ``all``) and per block; ``selection``,
     ``selection_blocks``, ``families``, ``families_blocks``: random-effects
     model selection over models and over model families, overall and per block;
-    ``contexts`` and ``context_agreement``: the learner-free response trees;
-    ``summary``: the console summary in plain words.
+    ``contexts`` and ``context_agreement``: the learner-free response trees
+    and their check against each participant's winning model; ``summary``: the
+    console summary in plain words; ``excluded``: participants with nothing to
+    fit and why; ``lookalikes``: sets of models identical on this task (the
+    first of each was compared); ``notes``: lines for the console.
     """
 
     fits: pd.DataFrame
@@ -41,77 +48,123 @@ class FitResult:
     contexts: pd.DataFrame
     context_agreement: pd.DataFrame
     summary: str
+    excluded: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=["participant", "group", "reason"]))
+    lookalikes: tuple[tuple[str, ...], ...] = ()
     settings: Mapping[str, object] = field(default_factory=dict)
+    notes: tuple[str, ...] = ()
 
-    def tables(self) -> dict[str, pd.DataFrame]:
-        """Return the output tables by file stem (``fits`` -> fits.csv); per-trial predictions as ``trials``."""
-        return {"fits": self.fits, "blocks": self.blocks, "winners": self.winners,
-                "selection": self.selection, "selection_blocks": self.selection_blocks,
-                "families": self.families, "families_blocks": self.families_blocks,
-                "contexts": self.contexts,
-                "context_agreement": self.context_agreement, "trials": self.predictions}
+    def tables(self, trials: str = "best") -> dict[str, pd.DataFrame]:
+        """Return the output tables by file stem (``fits`` -> fits.csv).
+
+        ``trials`` chooses the rows of the per-trial predictions table
+        ``trials``: "best" (each participant's whole-session winning model),
+        "all" (every model) or "none" (no table).
+        """
+        out = {"excluded": self.excluded, "fits": self.fits, "blocks": self.blocks, "winners": self.winners,
+               "selection": self.selection, "selection_blocks": self.selection_blocks,
+               "families": self.families, "families_blocks": self.families_blocks,
+               "contexts": self.contexts, "context_agreement": self.context_agreement}
+        if trials == "all":
+            out["trials"] = self.predictions
+        elif trials == "best":
+            best = self.winners.loc[self.winners["block"] == ALL, ["participant", "best_model"]]
+            keep = self.predictions.merge(best.rename(columns={"best_model": "model"}),
+                                          on=["participant", "model"])
+            out["trials"] = keep.reset_index(drop=True)
+        elif trials != "none":
+            raise UsageError(f"trials must be 'best', 'all' or 'none', got {trials!r}")
+        return out
 
 
 def fit(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path,
         models: Sequence[str | ModelSpec] | None = None, *, free: Iterable[str] = (),
         fixed: Mapping[str, float] | None = None, n_starts: int = 3, seed: int = 0,
         n_jobs: int = 1, progress: bool | None = None, criterion: str = "bic",
-        context_depth: int | None = None) -> FitResult:
+        context_depth: int | None = None, merge_lookalikes: bool = True,
+        n_replicates: int = DEFAULT_REPLICATES) -> FitResult:
     """Return the analysis of a study: every model fitted per participant and compared.
 
     ``log`` is a validated log (:func:`foretell.logs.load_log`), a raw frame in
     the canonical format (validated here), or a path; ``task`` a Task or a path.
     ``models`` are model ids (default :func:`foretell.models.default_models`);
     ``free`` frees learner parameters (``leak``, ``alpha``); ``fixed`` holds
-    parameters; ``seed`` fixes the optimiser's random starts (same seed, same
-    tables, whatever ``n_jobs``). Group-level selection uses log evidence
-    -BIC/2 (``criterion="bic"``) or the cross-validated log-likelihood
-    (``"cv"``). ``context_depth`` is the response trees' maximal depth
-    (default: the task's deepest context + 1).
+    parameters; ``seed`` fixes the optimiser's random starts, the Gibbs
+    sampler of the group comparisons and the response-tree replicates (same
+    seed, same tables, whatever ``n_jobs``). Winners and group-level selection
+    use log evidence -BIC/2 (``criterion="bic"``) or the cross-validated
+    log-likelihood (``"cv"``), for the whole session and per block. Models
+    identical on this task (:func:`foretell.compare.lookalikes`) are compared
+    once unless ``merge_lookalikes`` is false. ``context_depth`` is the
+    response trees' maximal depth (default: the task's deepest context + 1,
+    within the tree mixture's limit); ``n_replicates`` the number of guess
+    sequences simulated from each participant's winning model for the
+    response-tree check.
     """
     free = (free,) if isinstance(free, str) else tuple(free)
     if not isinstance(task, Task):
         task = load_task(task)
+    if task.response != "guess":
+        raise UsageError(f"task {task.name!r} is a {task.response} design: the guess models of "
+                         "fit do not apply (use foretell rt for its reaction times)")
+    if criterion not in compare.CRITERIA:
+        raise UsageError(f"criterion must be one of {', '.join(compare.CRITERIA)}, got {criterion!r}")
+    context_depth = response_tree_depth(task, context_depth)
+    specs = model_specs(models, task, free)  # every model id and depth is checked before any work
     if isinstance(log, pd.DataFrame):
         log = validate_log(log, task)
     elif not isinstance(log, ValidatedLog):
         log = load_log(log, task)
-    log = log.frame
-    tables = fit_participants(log, task, models, free=free, fixed=fixed, n_starts=n_starts,
+    tables = fit_participants(log, task, specs, free=free, fixed=fixed, n_starts=n_starts,
                               seed=seed, n_jobs=n_jobs, progress=progress)
-    winners = compare.winners(tables.fits, tables.blocks)
-    selection = compare.selection(tables.fits, criterion=criterion)
-    selection_blocks = compare.selection_blocks(tables.blocks, tables.fits)
-    by_family = partial(compare.default_families, task_depth=task.max_depth)
-    families = compare.families(tables.fits, by_family, criterion=criterion)
-    families_blocks = compare.families_blocks(tables.blocks, by_family, fits=tables.fits)
-    contexts = context_report(log, task, max_depth=context_depth)
-    summary = "\n".join([compare.summary_text(winners, selection, selection_blocks, families),
-                         convergence_text(tables.fits, tables.blocks)])
+    merge = compare.lookalikes(specs, tables.predictions) if merge_lookalikes else []
+    fams = compare.default_families(specs)
+    options = {"criterion": criterion, "merge": merge, "seed": seed}
+    winners = compare.winners(tables.fits, tables.blocks, criterion=criterion, merge=merge)
+    selection = compare.selection(tables.fits, **options)
+    selection_blocks = compare.selection_blocks(tables.blocks, **options)
+    families = compare.families(tables.fits, fams, **options)
+    families_blocks = compare.families_blocks(tables.blocks, fams, **options)
+    fitted = log.frame[~log.frame["participant"].isin(tables.excluded["participant"])]
+    contexts = context_report(fitted, task, max_depth=context_depth, fits=tables.fits,
+                              winners=winners, n_replicates=n_replicates, seed=seed)
+    summary = "\n".join([summary_text(winners, selection, selection_blocks, families,
+                                      families_blocks, merge=merge),
+                         convergence_text(tables.fits, tables.blocks), bound_text(tables.fits)])
+    notes = tuple(f"participant {row.participant} left out: {row.reason}"
+                  for row in tables.excluded.itertuples(index=False))
     return FitResult(fits=tables.fits, blocks=tables.blocks, predictions=tables.predictions,
                      winners=winners, selection=selection, selection_blocks=selection_blocks,
                      families=families, families_blocks=families_blocks, contexts=contexts,
                      context_agreement=context_agreement(contexts, task), summary=summary,
-                     settings={"task": task.name, "models": sorted(tables.fits["model"].unique()),
-                               "free": free, "seed": seed, "criterion": criterion})
+                     excluded=tables.excluded, lookalikes=tuple(tuple(m) for m in merge),
+                     settings={"task": task.name, "models": [s.model_id for s in specs],
+                               "free": list(free), "fixed": dict(fixed or {}), "seed": seed,
+                               "n_starts": n_starts, "criterion": criterion,
+                               "context_depth": context_depth, "n_replicates": n_replicates,
+                               "merge_lookalikes": merge_lookalikes},
+                     notes=notes)
 
 
-def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
-    """Return one line on optimiser failures: whole-session fits, cross-validation folds, block refits.
+def bound_text(fits: pd.DataFrame) -> str:
+    """Return one line counting fits that ended at a parameter bound (``at_bound`` in fits.csv)."""
+    at = fits["at_bound"].fillna("").astype(str) if "at_bound" in fits.columns else pd.Series([], dtype=str)
+    n = int((at != "").sum())
+    if not n:
+        return "bounds: no fitted parameter ended at a bound"
+    names = sorted({p for cell in at[at != ""] for p in cell.split(";")})
+    return (f"bounds: {plural(n, 'fit')} of {len(fits)} ended at a bound of {', '.join(names)} "
+            "(at_bound in fits.csv): read those estimates as limits, not values")
 
-    A cross-validation that could not run (fewer than two blocks) is said so,
-    not counted as a failure.
+
+def response_tree_depth(task: Task, depth: int | None = None) -> int:
+    """Return the depth of the response trees: ``depth``, or the task's deepest context + 1 within the limit.
+
+    The limit is the tree mixture's :data:`foretell.learners.mixture.MAX_TREE_DEPTH`;
+    an explicit depth beyond it is a UsageError (raised before any fitting).
     """
-    parts = [(int(fits["converged"].eq(False).sum()), len(fits), "fits")]
-    notes = []
-    if "cv_converged" in fits.columns:
-        parts.append((int(fits["cv_converged"].eq(False).sum()), len(fits), "cross-validations"))
-        if fits["cv_converged"].isna().any():
-            notes.append("cross-validation skipped where a participant has fewer than two blocks")
-    if "converged" in blocks.columns:
-        parts.append((int(blocks["converged"].eq(False).sum()), len(blocks), "block refits"))
-    failed = [f"{k} of {n} {what}" for k, n, what in parts if k]
-    line = ("optimiser: every fit converged" if not failed else
-            "optimiser: did not converge for " + ", ".join(failed)
-            + " (see the converged and message columns; comparisons leave those fits out)")
-    return "; ".join([line, *notes])
+    if depth is None:
+        return min(task.max_depth + 1, MAX_TREE_DEPTH)
+    if isinstance(depth, bool) or not isinstance(depth, int) or not 0 <= depth <= MAX_TREE_DEPTH:
+        raise UsageError(f"the response-tree depth must be a whole number from 0 to {MAX_TREE_DEPTH}, "
+                         f"got {depth!r}")
+    return depth

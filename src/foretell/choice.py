@@ -34,6 +34,17 @@ def choice_proba(pred: np.ndarray, inv_temp: float, lapse: float) -> np.ndarray:
     return np.exp(choice_log_proba(pred, inv_temp, lapse))
 
 
+def sample_choices(proba: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Return the symbol drawn on each trial from guess probabilities ``proba`` (n, m) and uniforms ``u``.
+
+    Inverse-CDF sampling (common practice): the draw is the first a with
+    u < P(guess <= a). ``u`` has shape (..., n) (e.g. replicates x trials); the
+    result has the shape of ``u``.
+    """
+    m = proba.shape[-1]
+    return np.minimum((np.cumsum(proba, axis=-1) < np.asarray(u)[..., None]).sum(axis=-1), m - 1)
+
+
 def choice_terms(log_pred: np.ndarray, guess: np.ndarray, inv_temp: float,
                  lapse: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Return per-trial log P(guess) and its derivatives in inv_temp and in lapse.

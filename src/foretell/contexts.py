@@ -7,6 +7,19 @@ it, and the symbol counted at each node is the participant's guess. The
 posterior probability that a context is a leaf, and the MAP "response tree",
 say which pasts the guesses distinguish, whatever learner produced them.
 
+Recency is not context use. A learner that weighs recent trials more (leaky
+counting, or any learner with a short memory) makes its guesses depend on
+the last few stimuli even when it counts no context at all: a leaky depth-0
+learner on a memoryless source guesses what it has just seen, and its
+response tree is split deeper than the source. So a response tree deeper
+than the source is evidence that a participant uses a context only when it
+goes beyond what the participant's winning model itself produces. Given
+the fits and the winners, :func:`context_report` simulates that baseline
+(replicate guesses from each participant's winning model on the
+participant's own stimuli) and :func:`context_agreement` says, per source
+context, whether the observed status is one the winning model produces (a
+posterior predictive check; see :func:`context_agreement`).
+
 Sessions and blocks. A participant's sessions are pooled by summing the node
 statistics: the sessions are laid end to end and the first ``max_depth``
 trials of every session are skipped (their context would reach into the
@@ -20,23 +33,54 @@ that preceded each trial in its session. Missed guesses are not counted.
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
+from foretell.choice import choice_proba, sample_choices
+from foretell.errors import UsageError
 from foretell.labels import ALL, block_label, parse_context
 from foretell.learners import TreeMixture
+from foretell.learners.base import Learner
+from foretell.learners.mixture import TreePosterior
+from foretell.models import normalise_model_id, parse_model
+from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
 
 STATUSES = ("distinguished", "merged", "split-deeper", "unvisited")
 
+DEFAULT_REPLICATES = 20
+"""Replicate guess sequences simulated per participant from the winning model."""
+
+BEYOND_LEVEL = 0.05
+"""beyond_model is True when the observed status occurs in fewer than this share of the replicates."""
+
+_EXPECTED_SHARES = {"distinguished": "expected_distinguished", "merged": "expected_merged",
+                    "split-deeper": "expected_split_deeper"}
 _REPORT_COLUMNS = ["participant", "group", "session", "block", "context", "depth", "n_obs",
-                   "stop_prob", "leaf_prob", "in_map_tree", "in_source_tree"]
+                   "stop_prob", "leaf_prob", "in_map_tree", "in_source_tree", "model",
+                   "n_replicates", "expected_leaf_prob", *_EXPECTED_SHARES.values()]
+_AGREEMENT_COLUMNS = ["participant", "group", "session", "block", "source_context", "depth",
+                      "status", "response_leaf", "n_obs", "leaf_prob", "model", "n_replicates",
+                      "expected_status_share", "expected_leaf_prob", "beyond_model"]
+
+
+@dataclass(frozen=True)
+class _Winner:
+    """A participant's winning model at its fitted parameters: what the replicates are drawn from."""
+
+    model: str
+    learner: Learner
+    inv_temp: float
+    lapse: float
 
 
 def _pooled_sequence(trials: pd.DataFrame, max_depth: int) -> tuple[np.ndarray, np.ndarray]:
     """Return stimuli x and guesses y (-1 = not counted), sessions end to end.
 
-    Trials sorted by session and trial; the first ``max_depth`` trials of every
+    Trials sorted by session, block and trial; the first ``max_depth`` trials of every
     session are not counted (the mixture already skips those of the first).
     """
     x = trials["stimulus_idx"].to_numpy(dtype=np.int64)
@@ -48,16 +92,126 @@ def _pooled_sequence(trials: pd.DataFrame, max_depth: int) -> tuple[np.ndarray, 
     return x, y
 
 
-def _report_rows(tree: TreeMixture, x: np.ndarray, y: np.ndarray, task: Task,
-                 source: frozenset[tuple[int, ...]]) -> pd.DataFrame:
-    post = tree.posterior(x, task.n_symbols, targets=y)[0]
+def _report_rows(post: TreePosterior, task: Task, source: frozenset[tuple[int, ...]]) -> pd.DataFrame:
+    """Return the posterior's table (every node, visited or not) with in_source_tree."""
     frame = post.to_frame(task.symbols)
     frame["in_source_tree"] = [c in source for c in post.contexts]
-    return frame[frame["n_obs"] > 0]
+    return frame
+
+
+def _map_statuses(post: TreePosterior) -> np.ndarray:
+    """Return the status of every node of ``post`` in its MAP tree: 0 a leaf, 1 merged, 2 split deeper.
+
+    A node is merged when a shorter context on its path (a suffix) is a MAP
+    leaf, split deeper when neither it nor any such suffix is.
+    """
+    leaves = set(post.map_tree)
+    covered: dict[tuple[int, ...], bool] = {}
+    status = np.empty(len(post.contexts), dtype=np.int64)
+    for i, c in enumerate(post.contexts):  # sorted by depth: a node's parent c[1:] comes first
+        above = bool(c) and covered[c[1:]]
+        covered[c] = above or c in leaves
+        status[i] = 1 if above else (0 if c in leaves else 2)
+    return status
+
+
+def _replicate_columns(tree: TreeMixture, x: np.ndarray, targets: np.ndarray, m: int,
+                       keep: np.ndarray) -> dict[str, np.ndarray]:
+    """Return the mean leaf_prob and the share of each MAP status over replicate ``targets`` (R, n).
+
+    Every replicate counts the same trials as the observed guesses, so its
+    posterior has the same nodes in the same order; ``keep`` selects the
+    visited ones, as in the observed report.
+    """
+    leaf = np.zeros(int(keep.sum()))
+    counts = np.zeros((3, len(leaf)), dtype=np.int64)
+    for y in targets:
+        post = tree.posterior(x, m, targets=y)[0]
+        leaf += post.leaf_prob[keep]
+        counts[_map_statuses(post)[keep], np.arange(len(leaf))] += 1
+    n = len(targets)
+    return {"expected_leaf_prob": leaf / n,
+            **{name: counts[k] / n for k, name in enumerate(_EXPECTED_SHARES.values())}}
+
+
+def _winners(fits: pd.DataFrame, winners: pd.DataFrame, task: Task) -> dict[object, _Winner]:
+    """Return each participant's winning model (block ``all``) with the learner at its fitted values.
+
+    A participant is left out when it has no winner, or when the winner's row
+    of ``fits`` is missing or has no usable inv_temp or lapse; learner
+    parameters absent or NaN take the model's defaults.
+    """
+    for name, table, needed in (("fits", fits, ["participant", "model", *CHOICE_PARAMS]),
+                                ("winners", winners, ["participant", "block", "best_model"])):
+        if not isinstance(table, pd.DataFrame):
+            raise UsageError(f"{name} must be a table (pandas DataFrame), got {type(table).__name__}")
+        missing = [c for c in needed if c not in table.columns]
+        if missing:
+            raise UsageError(f"{name} lacks the column(s) {', '.join(missing)}")
+    overall = winners[(winners["block"].astype("string") == ALL) & winners["best_model"].notna()]
+    fitted = fits.assign(_model=fits["model"].map(lambda s: normalise_model_id(str(s))))
+    found: dict[object, _Winner] = {}
+    for participant, best in zip(overall["participant"], overall["best_model"]):
+        model = normalise_model_id(str(best))
+        rows = fitted[(fitted["participant"] == participant) & (fitted["_model"] == model)]
+        if rows.empty:
+            continue
+        row = rows.iloc[0]
+        choice = {p: row[p] for p in CHOICE_PARAMS}
+        if not all(PARAMS[p].contains(_number(v)) for p, v in choice.items()):
+            continue
+        spec = parse_model(model, task)
+        learned = {p: _number(row[p]) for p in LEARNER_PARAMS if p in row.index}
+        learner = spec.learner(**{p: v for p, v in learned.items() if math.isfinite(v)})
+        found[participant] = _Winner(model, learner, *(float(choice[p]) for p in CHOICE_PARAMS))
+    return found
+
+
+def _number(value: object) -> float:
+    """Return ``value`` as a float (NaN when it is missing or not a number)."""
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _replicate_guesses(winner: _Winner, x: np.ndarray, session: np.ndarray, counted: np.ndarray,
+                       m: int, n_replicates: int, rng: np.random.Generator) -> np.ndarray:
+    """Return (n_replicates, n) guesses drawn from the winning model (-1 where not ``counted``).
+
+    The learner restarts at each session and sees the participant's own
+    stimuli; guesses follow P(guess = a) = (1 - lapse) softmax(inv_temp log p)_a
+    + lapse / m (:func:`foretell.choice.choice_proba`), drawn by inverting the
+    cumulative distribution with one uniform per trial and replicate.
+    """
+    starts = np.flatnonzero(np.r_[True, session[1:] != session[:-1]])
+    pred = np.concatenate([winner.learner.next_proba(s, m) for s in np.split(x, starts[1:])])
+    guesses = sample_choices(choice_proba(pred, winner.inv_temp, winner.lapse),
+                             rng.random((n_replicates, len(x))))
+    return np.where(counted, guesses, -1)
+
+
+def _participant_rng(seed: int, participant: object) -> np.random.Generator:
+    """Return the participant's own stream: a SeedSequence child of ``seed`` keyed by the participant's label.
+
+    Keyed by the label (not by position), a participant's replicates do not
+    depend on the order of the log, on the other participants, or on how the
+    work is split.
+    """
+    key = tuple(str(participant).encode("utf-8"))
+    return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
+
+
+def _check_count(name: str, value: object, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+        raise UsageError(f"{name} must be a whole number >= {low}, got {value!r}")
+    return int(value)
 
 
 def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
-                   blocks: bool = True, alpha: float = 0.5, leaf_prob: float | None = None) -> pd.DataFrame:
+                   blocks: bool = True, alpha: float = 0.5, leaf_prob: float | None = None, *,
+                   fits: pd.DataFrame | None = None, winners: pd.DataFrame | None = None,
+                   n_replicates: int = DEFAULT_REPLICATES, seed: int = 0) -> pd.DataFrame:
     """Return the response tree of every participant (and block): one row per visited context.
 
     For the (stimulus past -> guess) pairs, the tree-mixture posterior gives
@@ -66,9 +220,32 @@ def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
     = stop_prob(s) prod_{ancestors u} (1 - stop_prob(u)) (the posterior
     probability that s is a leaf of the response tree), ``in_map_tree`` (s is
     a leaf of the MAP response tree), and ``in_source_tree`` (s is a context,
-    i.e. a leaf, of the task's true tree). Columns participant, group,
-    session, block, context ('-'-joined labels, oldest first; the root '*'),
-    depth, n_obs, stop_prob, leaf_prob, in_map_tree, in_source_tree.
+    i.e. a leaf, of the task's true tree).
+
+    The winning model's baseline. With ``fits`` (participant, model,
+    inv_temp, lapse, and leak / alpha where fitted; absent or NaN learner
+    parameters take the model's defaults) and ``winners`` (participant,
+    block, best_model; the block ``all`` rows are used), ``n_replicates``
+    guess sequences are drawn per participant from the winning model at its
+    fitted parameters, on the participant's own stimuli (same sessions, the
+    learner restarting at each; the same missed trials left out), and each
+    replicate gets the same response-tree statistics, whole-session and per
+    block as the observed ones. Columns ``model`` (the winning model),
+    ``n_replicates``, ``expected_leaf_prob`` (mean leaf_prob of s over the
+    replicates) and ``expected_distinguished`` / ``expected_merged`` /
+    ``expected_split_deeper`` (share of replicates in which s is a leaf of
+    the MAP response tree / lies inside a shorter MAP leaf / is split deeper
+    by it; they sum to 1). Without fits and winners, or for a participant
+    with no winner or no usable fit (inv_temp, lapse), model is missing,
+    n_replicates is 0 and the expected columns are NaN. Randomness: one
+    SeedSequence child of ``seed`` per participant, keyed by its label, so a
+    participant's replicates do not depend on the other participants or
+    their order.
+
+    Columns participant, group, session, block, context ('-'-joined labels,
+    oldest first; the root '*'), depth, n_obs, stop_prob, leaf_prob,
+    in_map_tree, in_source_tree, model, n_replicates, expected_leaf_prob,
+    expected_distinguished, expected_merged, expected_split_deeper.
 
     ``max_depth`` defaults to one more than the task's deepest context, so
     that a response tree deeper than the source can show. ``alpha`` and
@@ -79,25 +256,44 @@ def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
     """
     depth = task.max_depth + 1 if max_depth is None else int(max_depth)
     tree = TreeMixture(max_depth=depth, alpha=alpha, leaf_prob=leaf_prob)
+    if (fits is None) != (winners is None):
+        raise UsageError("give both fits= and winners= (or neither) for the winning model's baseline")
+    n_replicates = _check_count("n_replicates", n_replicates, 1)
+    seed = _check_count("seed", seed, 0)
+    baseline = {} if fits is None else _winners(fits, winners, task)
     source = frozenset(task.contexts)
+    m = task.n_symbols
     data = log if "session" in log.columns else log.assign(session=1)
-    data = data.sort_values(["participant", "session", "trial"], kind="stable")
+    data = data.sort_values(["participant", "session", "block", "trial"], kind="stable")
     parts = []
     for participant, trials in data.groupby("participant", sort=True):
         group = trials["group"].iloc[0] if "group" in trials.columns else pd.NA
         x, y = _pooled_sequence(trials, depth)
+        winner = baseline.get(participant)
+        replicates = None if winner is None else _replicate_guesses(
+            winner, x, trials["session"].to_numpy(), y >= 0, m, n_replicates,
+            _participant_rng(seed, participant))
         units = [((ALL, ALL), np.ones(len(trials), dtype=bool))]
         if blocks:
             pairs = trials[["session", "block"]].drop_duplicates().itertuples(index=False)
             units += [((block_label(s), block_label(b)),
                        ((trials["session"] == s) & (trials["block"] == b)).to_numpy()) for s, b in pairs]
         for (session, block), mask in units:
-            rows = _report_rows(tree, x, np.where(mask, y, -1), task, source)
+            post = tree.posterior(x, m, targets=np.where(mask, y, -1))[0]
+            keep = post.n_obs > 0
+            rows = _report_rows(post, task, source)[keep]
+            if winner is None:
+                rows = rows.assign(model=None, n_replicates=0, expected_leaf_prob=np.nan,
+                                   **{name: np.nan for name in _EXPECTED_SHARES.values()})
+            else:
+                rows = rows.assign(model=winner.model, n_replicates=n_replicates,
+                                   **_replicate_columns(tree, x, np.where(mask, replicates, -1), m, keep))
             parts.append(rows.assign(participant=participant, group=group, session=session, block=block))
     if not parts:
         return pd.DataFrame(columns=_REPORT_COLUMNS)
     out = pd.concat(parts, ignore_index=True)[_REPORT_COLUMNS]
     out["group"] = out["group"].astype("string")
+    out["model"] = out["model"].astype("string")
     return out
 
 
@@ -118,8 +314,8 @@ def _status(context: tuple[int, ...], visited: set[tuple[int, ...]],
     return "split-deeper", None
 
 
-def context_agreement(report: pd.DataFrame, task: Task) -> pd.DataFrame:
-    """Return, per participant and block, how the response tree treats each context of the source.
+def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND_LEVEL) -> pd.DataFrame:
+    """Return each source context's status in every response tree, checked against the winning model.
 
     Status of a source context s (a leaf of the task's true tree) in the MAP
     response tree of :func:`context_report`: "distinguished" (s is itself a
@@ -128,26 +324,65 @@ def context_agreement(report: pd.DataFrame, task: Task) -> pd.DataFrame:
     siblings), "split-deeper" (the response tree splits s further: the guesses
     depend on an older symbol than the source does), "unvisited" (no guess
     was counted in s; also when s is deeper than the report's max_depth).
+
+    A status is not evidence of context use by itself: recency alone (a
+    leaky learner) splits the tree deeper (see the module docstring). So each
+    status is set against the replicates of the participant's winning model
+    in the report, a posterior predictive check (Gelman, Meng & Stern, 1996;
+    Gelman et al., Bayesian Data Analysis, ch. 6) with the fitted parameters
+    used as a plug-in estimate (their uncertainty is ignored, which makes the
+    replicates somewhat less varied than a full posterior predictive and the
+    check somewhat quicker to flag). ``expected_status_share`` is the share
+    of replicates in which s has the observed status (1 for unvisited: every
+    replicate counts the same trials), ``expected_leaf_prob`` the mean
+    leaf_prob of s over the replicates, and ``beyond_model`` is True when
+    expected_status_share < ``level`` (default 0.05): the observed
+    dependence on the past, or its absence, is not what the winning model
+    produces on these stimuli. With 20 replicates and level 0.05 that means
+    in none of them; the share cannot resolve finer than 1 / n_replicates.
+    It is a per-context screen, not a corrected test: with many contexts,
+    blocks and participants, about ``level`` of them are flagged by chance
+    when the winning model is right. beyond_model is missing (and model,
+    the expected columns) when the report has no replicates for the
+    participant (no fits / winners given, no winner, or no usable fit).
+
     Columns participant, group, session, block, source_context, depth,
     status, response_leaf (the covering MAP leaf; '' when split or
-    unvisited), n_obs and leaf_prob of s (0 and NaN when unvisited).
+    unvisited), n_obs and leaf_prob of s (0 and NaN when unvisited), model,
+    n_replicates, expected_status_share, expected_leaf_prob, beyond_model.
     """
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0.0 < level < 1.0:
+        raise UsageError(f"level must be a number in (0, 1), got {level!r}")
     rows = []
     keys = ["participant", "group", "session", "block"]
     for labels, unit in report.groupby(keys, sort=False, dropna=False):
         nodes = [_parse(c, task) for c in unit["context"]]
         visited = set(nodes)
         map_leaves = {c for c, leaf in zip(nodes, unit["in_map_tree"]) if leaf}
-        stats = dict(zip(nodes, zip(unit["n_obs"], unit["leaf_prob"])))
+        stats = dict(zip(nodes, unit.to_dict("records")))
+        n_rep = int(unit["n_replicates"].iloc[0])
+        model = unit["model"].iloc[0] if n_rep > 0 else pd.NA
         for context in task.contexts:
             status, leaf = _status(context, visited, map_leaves)
-            n_obs, leaf_prob = stats.get(context, (0, np.nan))
+            row = stats.get(context)
+            if n_rep == 0:
+                share = expected_leaf = np.nan
+            elif row is None:
+                share, expected_leaf = 1.0, np.nan
+            else:
+                share, expected_leaf = row[_EXPECTED_SHARES[status]], row["expected_leaf_prob"]
             rows.append({**dict(zip(keys, labels)), "source_context": task.context_label(context),
                          "depth": len(context), "status": status,
                          "response_leaf": task.context_label(leaf) if leaf is not None else "",
-                         "n_obs": n_obs, "leaf_prob": leaf_prob})
-    return pd.DataFrame(rows, columns=[*keys, "source_context", "depth", "status", "response_leaf",
-                                       "n_obs", "leaf_prob"])
+                         "n_obs": row["n_obs"] if row is not None else 0,
+                         "leaf_prob": row["leaf_prob"] if row is not None else np.nan,
+                         "model": model, "n_replicates": n_rep, "expected_status_share": share,
+                         "expected_leaf_prob": expected_leaf,
+                         "beyond_model": bool(share < level) if n_rep > 0 else pd.NA})
+    out = pd.DataFrame(rows, columns=_AGREEMENT_COLUMNS)
+    out["model"] = out["model"].astype("string")
+    out["beyond_model"] = out["beyond_model"].astype("boolean")
+    return out
 
 
-__all__ = ["STATUSES", "context_agreement", "context_report"]
+__all__ = ["BEYOND_LEVEL", "DEFAULT_REPLICATES", "STATUSES", "context_agreement", "context_report"]

@@ -1,0 +1,131 @@
+"""Tests of the plain-words summaries: what the console may say, and only with evidence behind it."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from foretell.compare import lookalikes, selection, selection_blocks, winners
+from foretell.models import parse_model
+from foretell.text import number, plural
+from foretell.summaries import (
+    BOR_MAX,
+    CLEAR_PXP,
+    STANDS_OUT_MARGIN,
+    convergence_text,
+    stands_out_at,
+    summary_text,
+    verdict,
+)
+
+
+def _selection(pxp, bor, group="all", n=10, criterion="bic", **labels):
+    """Selection rows of one comparison with the given protected exceedances and omnibus risk."""
+    models = [f"count-{i}" for i in range(len(pxp))]
+    return pd.DataFrame(dict(group=group, **labels, model=models, expected_freq=np.nan, exceedance=np.nan,
+                             protected_exceedance=pxp, bor=bor, freq_concentration=np.nan,
+                             n_participants=n, criterion=criterion, method="variational", note=""))
+
+
+def _winners(best, strength, group="g"):
+    return pd.DataFrame(dict(participant=[f"p{i}" for i in range(len(best))], group=group, block="all",
+                             best_model=best, runner_up="count-9", criterion="bic", delta=np.nan,
+                             strength=strength, n_models=3, note=""))
+
+
+def test_clear_only_at_the_named_criterion():
+    # pxp >= 0.95 for a clear winner (common practice)
+    assert CLEAR_PXP == 0.95
+    status, leader, words = verdict(_selection([0.96, 0.02, 0.02], 0.01), "model")
+    assert (status, leader) == ("clear", "count-0") and "0.96 >= 0.95" in words
+    status, leader, words = verdict(_selection([0.94, 0.03, 0.03], 0.01), "model")
+    assert (status, leader) == ("ahead", "count-0") and "not clear" in words
+
+
+def test_nobody_is_ahead_when_the_omnibus_risk_exceeds_one_half():
+    # Rigoux et al. (2014): BOR > 0.5 means "all models equally frequent" is the more probable account.
+    assert BOR_MAX == 0.5
+    status, leader, words = verdict(_selection([0.7, 0.2, 0.1], 0.51), "model")
+    assert status == "level" and leader is None
+    assert "no model stands out" in words and "count-0" not in words
+
+
+def test_nobody_is_ahead_near_chance_or_below_one_half():
+    # the documented bar: max(1/K + 0.1, 1/2)
+    assert STANDS_OUT_MARGIN == 0.1
+    assert stands_out_at(2) == 0.6 and stands_out_at(4) == 0.5 and stands_out_at(10) == 0.5
+    status, leader, words = verdict(_selection([0.59, 0.41], 0.2), "model")
+    assert status == "level" and leader is None and "0.59 < 0.60 with 2 models" in words
+    assert verdict(_selection([0.61, 0.39], 0.2), "model")[0] == "ahead"
+    status, _, words = verdict(_selection([0.45, 0.25, 0.2, 0.1], 0.2), "model")
+    assert status == "level" and "with 4 models" in words
+    assert verdict(_selection([0.55, 0.25, 0.1, 0.1], 0.2), "model")[0] == "ahead"
+
+
+def test_a_number_is_never_rounded_onto_the_bar_it_is_compared_with():
+    status, _, words = verdict(_selection([0.9496, 0.0504], 0.01), "model")
+    assert status == "ahead" and "0.950 < 0.95" not in words and "0.9496 < 0.95" in words
+    status, _, words = verdict(_selection([0.7, 0.3], 0.5004), "model")
+    assert status == "level" and "omnibus risk 0.5004 > 0.50" in words
+
+
+def test_numbers_never_print_as_minus_zero_and_counts_agree_in_number():
+    assert number(-0.004, ".2f") == "0.00" and number(-1e-12, ".2f") == "0.00"
+    assert number(-0.006, ".2f") == "-0.01" and number(0.5, ".1f") == "0.5"
+    assert plural(1, "participant") == "1 participant" and plural(2, "participant") == "2 participants"
+    assert plural(0, "family", "families") == "0 families"
+    text = summary_text(_winners(["count-0"], ["positive"]),
+                        _selection([0.97, 0.03], -1e-12, group="g", n=1))
+    assert "-0.00" not in text and "(1 participant)" in text
+
+
+def test_summary_names_the_criterion_the_blocks_and_the_lookalikes():
+    sel = _selection([0.97, 0.02, 0.01], 0.01, group="g", n=3, criterion="cv")
+    blocks = pd.concat([_selection([0.9, 0.05, 0.05], 0.05, group="g", block="1"),
+                        _selection([0.4, 0.3, 0.3], 0.7, group="g", block="2")])
+    text = summary_text(_winners(["count-0", "count-0", "count-1"], ["strong", "bare-mention", None]),
+                        sel, blocks, merge=[("count-0", "count-task")])
+    lines = text.splitlines()
+    assert "cross-validated" in lines[0]
+    assert "count-task left out: identical to count-0 on this task" in text
+    assert any(line.startswith("group g (3 participants): clear winner: count-0") for line in lines)
+    by_block = next(line for line in lines if "by block" in line)
+    assert "block 1: count-0 (pxp 0.90, BOR 0.05)" in by_block
+    assert "block 2: none stands out (top pxp 0.40, BOR 0.70)" in by_block
+    assert "best" not in by_block  # no counts of per-participant winners here
+    own = next(line for line in lines if "own best model" in line)
+    assert "count-0 2, count-1 1" in own and "1 of 3 participants" in own
+    assert "BIC" in summary_text(_winners(["count-0"], ["strong"]), _selection([0.97, 0.03], 0.01))
+
+
+def test_an_invented_control_group_is_not_led_by_a_lookalike(compass):
+    # On a memoryless task count-task is count-0. Every participant's guesses are
+    # explained equally well by count-0, count-task and count-1 (up to 0.1 nat):
+    # the summary must not name a leader, and must say count-task was left out.
+    rng = np.random.default_rng(0)
+    rows = []
+    for p in range(10):
+        base = -300.0 + rng.normal(0, 0.1, 2)
+        for model, ll in [("count-0", base[0]), ("count-task", base[0]), ("count-1", base[1])]:
+            rows.append(dict(participant=f"c{p}", group="control", model=model, loglik=ll, n_params=2,
+                             n_trials=400, bic=2 * np.log(400) - 2 * ll, cv_loglik=ll,
+                             converged=True, cv_converged=True))
+    fits = pd.DataFrame(rows)
+    blocks = fits.assign(block=1, bic_block=fits["bic"], cv_loglik_block=np.nan)
+    sets = lookalikes([parse_model(m, compass) for m in ["count-0", "count-task", "count-1"]])
+    sel = selection(fits, merge=sets)
+    text = summary_text(winners(fits, blocks, merge=sets), sel,
+                        selection_blocks(blocks, merge=sets, method="variational"), merge=sets)
+    assert "count-task left out: identical to count-0 on this task" in text
+    assert "ahead" not in text and "clear winner" not in text
+    assert "group control (10 participants): no model stands out" in text
+
+
+def test_convergence_text_counts_failures_and_says_when_cv_could_not_run():
+    fits = pd.DataFrame(dict(converged=[True, False, True], cv_converged=[True, None, False]))
+    blocks = pd.DataFrame(dict(converged=[True, False, False, True]))
+    text = convergence_text(fits, blocks)
+    assert "1 of 3 fits" in text and "1 of 3 cross-validations" in text and "2 of 4 block refits" in text
+    assert "fewer than two blocks" in text
+    ok = convergence_text(fits.assign(converged=True, cv_converged=True), blocks.assign(converged=True))
+    assert ok == "optimiser: every fit converged"
