@@ -1,0 +1,106 @@
+"""Per-trial regressors: entropy, surprise, guess probability, lagged terms, contexts, learner values."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.stats import entropy as scipy_entropy
+
+from foretell.errors import UsageError
+from foretell.learners import Counting, TreeMixture
+from foretell.logs import validate_log
+from foretell.models import parse_model
+from foretell.regressors import REGRESSORS, learner_values, regressors
+from foretell.simulate import simulate_participants
+from foretell.tasks import Task
+
+
+@pytest.fixture(scope="module")
+def small(tide):
+    frame, _ = simulate_participants(tide, 2, 2, models=["count-1"], seed=3, block_length=40)
+    return validate_log(frame, tide)
+
+
+def test_entropy_and_surprise_match_the_learner(small, tide):
+    table = regressors(small, tide, ["count-1"])
+    rows = table[table["participant"] == "p01"]
+    x = small.frame.loc[small.frame["participant"] == "p01", "stimulus_idx"].to_numpy()
+    pred = Counting(depth=1).next_proba(x, 2)
+    # Shannon entropy in bits against scipy.stats.entropy (reference library)
+    np.testing.assert_allclose(rows["entropy"], scipy_entropy(pred, base=2, axis=1), rtol=1e-12)
+    np.testing.assert_allclose(rows["surprise"], -np.log2(pred[np.arange(len(x)), x]), rtol=1e-12)
+    np.testing.assert_allclose(rows["prev_surprise"].to_numpy()[1:],
+                               rows["surprise"].to_numpy()[:-1])
+    assert np.isnan(rows["prev_surprise"].iloc[0]) and np.isnan(rows["prev_correct"].iloc[0])
+
+
+def test_guess_prob_and_prev_correct_follow_the_responses(small, tide):
+    table = regressors(small, tide, ["count-0"])
+    frame = small.frame
+    missed = frame["missed"].to_numpy()
+    assert np.isnan(table["guess_prob"].to_numpy()[missed]).all()
+    assert np.isfinite(table["guess_prob"].to_numpy()[~missed]).all()
+    correct = np.where(missed, np.nan, (frame["response_idx"] == frame["stimulus_idx"]).astype(float))
+    for pid in small.participants:
+        at = (frame["participant"] == pid).to_numpy()
+        np.testing.assert_array_equal(table.loc[at, "prev_correct"].to_numpy()[1:], correct[at][:-1])
+    assert list(table.columns[:6]) == ["participant", "group", "session", "block", "trial", "model"]
+    assert set(REGRESSORS) <= set(table.columns)
+    assert len(table) == len(frame)  # every trial stays, missed or screened
+
+
+def test_contexts_name_the_symbols_the_learner_used(small, tide):
+    table = regressors(small, tide, ["count-2", "mix-3"])
+    frame = small.frame[small.frame["participant"] == "p01"]
+    labels = frame["stimulus"].to_numpy()
+    rows = table[(table["participant"] == "p01") & (table["model"] == "count-2")]
+    context = rows["context"].astype(object).to_numpy()
+    assert pd.isna(context[0]) and pd.isna(context[1])
+    assert all(context[t] == f"{labels[t - 2]}-{labels[t - 1]}" for t in range(2, len(labels)))
+    mix = table[(table["participant"] == "p01") & (table["model"] == "mix-3")]
+    depth = np.rint(TreeMixture(max_depth=3).mean_depth(frame["stimulus_idx"].to_numpy(), 2))
+    got = mix["context"].astype(object).to_numpy()[3:]
+    lengths = [0 if c == "*" else len(c.split("-")) for c in got]
+    np.testing.assert_array_equal(lengths, depth[3:])
+
+
+def test_learner_values_come_from_fits_then_fixed(tide):
+    spec = parse_model("count-1-leak", tide)
+    fits = pd.DataFrame({"participant": ["p01"], "model": ["count-1-leak"], "leak": [0.2],
+                         "alpha": [np.nan]})
+    assert learner_values(spec, "p01", fits=fits) == ({"leak": 0.2}, "fits")
+    assert learner_values(spec, "p02", fits=fits, fixed={"leak": 0.1}) == ({"leak": 0.1}, "fixed")
+    assert learner_values(spec, "p02", fits=fits)[1] == "profile"
+    plain = parse_model("count-1", tide)
+    assert learner_values(plain, "p02") == ({}, "default")
+
+
+def test_a_free_leak_needs_a_value_or_a_score(small, tide):
+    with pytest.raises(UsageError, match="needs a leak"):
+        regressors(small, tide, ["count-1-leak"])
+    table = regressors(small, tide, ["count-1-leak"], fixed={"leak": 0.3})
+    assert (table["leak"] == 0.3).all() and (table["params_from"] == "fixed").all()
+    picked = regressors(small, tide, ["count-1-leak"], leak_grid=(0.0, 0.5),
+                        score=lambda pid, cands: np.array([0.0, 1.0]))
+    assert (picked["leak"] == 0.5).all() and (picked["params_from"] == "profile").all()
+
+
+def test_symbols_only_task_loads_and_refuses_models_needing_the_source():
+    bare = Task.from_dict({"name": "bare", "symbols": ["a", "b", "c"], "response": "reaction"})
+    assert not bare.has_source and bare.response == "reaction"
+    assert parse_model("count-2", bare).depth == 2
+    for model in ("source", "count-task"):
+        with pytest.raises(UsageError):
+            parse_model(model, bare)
+
+
+def test_reaction_design_has_no_guess_probability():
+    bare = Task.from_dict({"name": "bare", "symbols": ["a", "b"], "response": "reaction"})
+    rng = np.random.default_rng(0)
+    stim = np.array(["a", "b"])[rng.integers(0, 2, 30)]
+    frame = pd.DataFrame({"participant": "p1", "block": 1, "trial": np.arange(1, 31),
+                          "stimulus": stim, "response": stim, "rt": 0.4})
+    table = regressors(validate_log(frame, bare), bare, ["count-1"])
+    assert table["guess_prob"].isna().all()
+    assert (table["prev_correct"].dropna() == 1.0).all()
