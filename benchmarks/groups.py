@@ -1,0 +1,90 @@
+"""Benchmark of the hierarchical group model of foretell.groups (run by hand).
+
+40 simulated participants (two groups of 20: count-0 and count-2 learners) x
+10 blocks of 100 trials of the lantern-relay task; the binomial model of
+optimal_rate with categorical blocks, participant random intercepts and
+block slopes, 4 chains x 1,000 draws after 1,000 tuning steps, timed from
+building the model to the diagnostics (compilation included, in a fresh
+process). The plain reference is the same model written in the textbook
+coordinates (cell means plus participant deviations, u_i ~ Normal(0, sd),
+centred), sampled with the same settings; the ratio compared is bulk ESS
+per second of the worst parameter. Targets: foretell's fit under 60 s on a
+2-core machine, passing the diagnostics gate.
+
+    PYTHONPATH=src python benchmarks/groups.py [--cores 2] [--skip-reference]
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+
+
+from foretell.bayes import diagnose, sample
+from foretell.groups import GATE, compare_groups, fit_group_model, learning_curves, model_data, permutation_effects
+from foretell.logs import validate_log
+from foretell.simulate import simulate_participants
+from foretell.tasks import load_task
+
+N_PARTICIPANTS, N_BLOCKS, BLOCK = 40, 10, 100
+TARGET_SECONDS = 60.0
+
+
+def plain_model(data):
+    """Return the reference: eta = cell[g, b] + u_i + v_i t_b with u, v centred deviations."""
+    import pymc as pm
+
+    obs_group = data.group[data.participant]
+    t = data.position[data.block]
+    with pm.Model() as model:
+        cell = pm.Normal("cell", 0.0, 1.5, shape=(len(data.groups), len(data.units)))
+        sd_u, sd_v = pm.HalfNormal("sd_intercept", 1.0), pm.HalfNormal("sd_block_slope", 1.0)
+        u = pm.Normal("u", 0.0, sd_u, shape=len(data.participants))
+        v = pm.Normal("v", 0.0, sd_v, shape=len(data.participants))
+        eta = cell[obs_group, data.block] + u[data.participant] + v[data.participant] * t
+        pm.Binomial("y", n=data.n, logit_p=eta, observed=data.y)
+    return model
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--cores", type=int, default=2)
+    parser.add_argument("--skip-reference", action="store_true")
+    args = parser.parse_args()
+    task = load_task("tasks/lantern-relay.toml")
+    raw, _ = simulate_participants(task, N_PARTICIPANTS, N_BLOCKS, groups={"A": ["count-0"], "B": ["count-2"]},
+                                   seed=0, block_length=BLOCK)
+    log = validate_log(raw, task)
+    t0 = time.perf_counter()
+    curves = learning_curves(log, task, ["accuracy", "optimal_rate", "median_rt", "depth"])
+    t_curves = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    permutation_effects(curves, [("B", "A")], seed=0)
+    t_perm = time.perf_counter() - t0
+    data = model_data(curves, "optimal_rate", ["A", "B"])
+    t0 = time.perf_counter()
+    fit = fit_group_model(data, [("B", "A")], seed=1, cores=args.cores)
+    t_fit = time.perf_counter() - t0
+    d = fit.diagnostics
+    print(f"curves (accuracy, optimal_rate, median_rt, depth): {t_curves:.1f} s; "
+          f"permutation tests ({len(curves['block'].unique())} blocks x 4 metrics): {t_perm:.1f} s")
+    print(f"foretell group model: {t_fit:.1f} s ({fit.parameterisation}: {fit.parameterisation_reason}); "
+          f"R-hat {d.rhat_max:.3f}, bulk ESS {d.ess_bulk_min:.0f}, divergences {d.divergences}, "
+          f"gate {'passed' if d.ok else 'failed: ' + '; '.join(d.reasons)}")
+    print(f"target: under {TARGET_SECONDS:.0f} s and passing the gate: "
+          f"{'PASS' if t_fit < TARGET_SECONDS and d.ok else 'FAIL'}")
+    if not args.skip_reference:
+        t0 = time.perf_counter()
+        idata, sampler, _ = sample(plain_model(data), draws=1000, tune=1000, chains=4, seed=1, cores=args.cores)
+        ref = diagnose(idata, sampler, GATE)
+        t_ref = time.perf_counter() - t0
+        ratio = (d.ess_bulk_min / t_fit) / (ref.ess_bulk_min / t_ref)
+        print(f"plain coordinates: {t_ref:.1f} s, R-hat {ref.rhat_max:.3f}, bulk ESS {ref.ess_bulk_min:.0f}; "
+              f"worst-parameter ESS per second, foretell / plain: {ratio:.1f}x")
+    t0 = time.perf_counter()
+    compare_groups(log, task, None, metrics=["optimal_rate"], seed=2, cores=args.cores)
+    print(f"compare_groups (optimal_rate only, no fits): {time.perf_counter() - t0:.1f} s")
+
+
+if __name__ == "__main__":
+    main()
