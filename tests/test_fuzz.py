@@ -140,3 +140,26 @@ def test_fit_on_corrupted_logs_leaves_no_partial_output(tmp_path: Path, capsys, 
     leftovers = [p.name for p in tmp_path.iterdir() if p.name not in ("in", "out")]
     assert leftovers == []  # never a partial output folder
     assert out.exists() == (code == 0)
+
+
+@pytest.mark.parametrize("command", [
+    ["rt", "--no-bayes", "--models", "count-0,count-1"],
+    ["events", "--models", "count-0,count-1"],
+    ["groups", "--no-bayes", "--models", "count-0,count-1"],
+    ["analyze", "--models", "count-0,count-1", "--skip", "rt,groups,report"],
+])
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=corrupted_log())
+def test_other_commands_on_corrupted_logs(tmp_path: Path, capsys, command, data: bytes) -> None:
+    import shutil
+
+    path = tmp_path / "in" / "log.csv"
+    path.parent.mkdir(exist_ok=True)
+    path.write_bytes(data)
+    out = tmp_path / "out"
+    shutil.rmtree(out, ignore_errors=True)
+    code = main([command[0], str(path), "--task", "tide-gauge", "--out", str(out), *command[1:]])
+    _assert_clean(code, capsys.readouterr().err)
+    assert [p.name for p in tmp_path.iterdir() if p.name not in ("in", "out")] == []
+    assert out.exists() == (code == 0)
+    assert path.read_bytes() == data

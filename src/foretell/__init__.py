@@ -17,6 +17,13 @@ def load_log(*args, **kwargs):
     return _load_log(*args, **kwargs)
 
 
+def analyze(*args, **kwargs):
+    """Return (and write) the whole analysis of a study; see :func:`foretell.pipeline.analyze`."""
+    from .pipeline import analyze as _analyze
+
+    return _analyze(*args, **kwargs)
+
+
 def fit(*args, **kwargs):
     """Return the fits and comparisons of a response log; see :func:`foretell.analysis.fit`."""
     from .analysis import fit as _fit
@@ -24,5 +31,5 @@ def fit(*args, **kwargs):
     return _fit(*args, **kwargs)
 
 
-__all__ = ["ForetellError", "InputError", "LogError", "Task", "TaskError", "fit", "load_log",
+__all__ = ["ForetellError", "InputError", "LogError", "Task", "TaskError", "analyze", "fit", "load_log",
            "load_task", "__version__"]

@@ -16,6 +16,7 @@ from .labels import ALL
 from .logs import ValidatedLog, load_log, validate_log
 from .learners.mixture import MAX_TREE_DEPTH
 from .models import ModelSpec, model_specs
+from .params import PARAMS
 from .summaries import convergence_text, summary_text
 from .text import plural
 from .tasks import Task, load_task
@@ -103,9 +104,7 @@ def fit(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path,
     free = (free,) if isinstance(free, str) else tuple(free)
     if not isinstance(task, Task):
         task = load_task(task)
-    if task.response != "guess":
-        raise UsageError(f"task {task.name!r} is a {task.response} design: the guess models of "
-                         "fit do not apply (use foretell rt for its reaction times)")
+    check_guess_design(task)
     if criterion not in compare.CRITERIA:
         raise UsageError(f"criterion must be one of {', '.join(compare.CRITERIA)}, got {criterion!r}")
     context_depth = response_tree_depth(task, context_depth)
@@ -145,15 +144,35 @@ def fit(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path,
                      notes=notes)
 
 
+def check_guess_design(task: Task) -> None:
+    """Raise UsageError unless ``task`` is a guess design (the guess models need guesses)."""
+    if task.response != "guess":
+        raise UsageError(f"task {task.name!r} is a {task.response} design: the guess models of "
+                         "fit do not apply (use foretell rt for its reaction times)")
+
+
 def bound_text(fits: pd.DataFrame) -> str:
-    """Return one line counting fits that ended at a parameter bound (``at_bound`` in fits.csv)."""
+    """Return one line counting fits that ended at a parameter bound, per parameter and side.
+
+    ``at_bound`` in fits.csv names the parameters; the side is the bound the
+    value is nearer to (:data:`foretell.params.PARAMS`). An upper inv_temp
+    bound means near-deterministic guessing, a lower lapse bound no lapses:
+    both are limits of what the data can tell, not estimates.
+    """
     at = fits["at_bound"].fillna("").astype(str) if "at_bound" in fits.columns else pd.Series([], dtype=str)
-    n = int((at != "").sum())
-    if not n:
+    counts: dict[tuple[str, str], int] = {}
+    for i in at.index[at != ""]:
+        for name in at[i].split(";"):
+            p = PARAMS[name]
+            value = float(fits.at[i, name])
+            side = "upper" if abs(value - p.high) < abs(value - p.low) else "lower"
+            counts[(name, side)] = counts.get((name, side), 0) + 1
+    if not counts:
         return "bounds: no fitted parameter ended at a bound"
-    names = sorted({p for cell in at[at != ""] for p in cell.split(";")})
-    return (f"bounds: {plural(n, 'fit')} of {len(fits)} ended at a bound of {', '.join(names)} "
-            "(at_bound in fits.csv): read those estimates as limits, not values")
+    parts = [f"{name} at its {side} bound {PARAMS[name].high if side == 'upper' else PARAMS[name].low:g} "
+             f"in {plural(n, 'fit')}" for (name, side), n in sorted(counts.items())]
+    return (f"bounds (of {plural(len(fits), 'fit')}; at_bound in fits.csv): " + ", ".join(parts)
+            + "; read those values as limits, not estimates")
 
 
 def response_tree_depth(task: Task, depth: int | None = None) -> int:

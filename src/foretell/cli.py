@@ -21,6 +21,7 @@ examples:
   foretell fit session.csv --task lantern-relay --out results/
 """
 TRIALS_CHOICES = ("best", "all", "none")
+DEMO_OUT = "foretell-demo"
 
 
 def _parse_map(pairs: Sequence[str]) -> dict[str, str]:
@@ -135,13 +136,41 @@ def build_parser() -> argparse.ArgumentParser:
         return sub.add_parser(name, help=help_, formatter_class=argparse.RawDescriptionHelpFormatter,
                               epilog=more + "examples:\n" + "".join(f"  {e}\n" for e in examples))
 
-    p = command("demo", "fit the embedded demo study and print the summary",
-                "foretell demo", "foretell demo --out demo-results/ --jobs 2")
-    p.add_argument("--out", help="also write the result tables to this folder")
+    p = command("demo", "run the whole analysis on the embedded demo study and write its report",
+                "foretell demo", "foretell demo --out demo-results/ --jobs 2",
+                "foretell demo --skip rt,groups       # the fits and comparisons only")
+    p.add_argument("--out", default=DEMO_OUT, help=f"folder for the results (default ./{DEMO_OUT})")
     p.add_argument("--jobs", type=_jobs, default=-1,
                    help="participants fitted in parallel (default -1: all cores)")
+    p.add_argument("--skip", default="", help="comma-separated steps to leave out: fit, rt, groups, "
+                                              "events, report")
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
-                   help="rows of trials.csv (see foretell fit --help)")
+                   help="rows of fit/trials.csv (see foretell fit --help)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an output folder that foretell wrote before")
+
+    p = command("analyze", "the whole job: validate, fit and compare, reaction times, groups, "
+                           "EEG events and the report",
+                "foretell analyze study.csv --task lantern-relay --out study-results/",
+                "foretell analyze study.csv --task lantern-relay --out r/ --recovery design/ --jobs 2",
+                "foretell analyze study.csv --task lantern-relay --out r/ --skip rt,events",
+                more="Writes one subfolder per step (validation, fit, rt, groups, events, recovery)\n"
+                     "and report.html with its figures.\n")
+    _add_log_options(p)
+    _add_screen_options(p)
+    p.add_argument("--out", required=True, help="folder for every result and the report")
+    p.add_argument("--models", help="comma-separated model ids for the fits (default: the task's set)")
+    p.add_argument("--rt-models", help="comma-separated model ids for the RT models (default: --models)")
+    p.add_argument("--free", default="", help="extra free learner parameters: leak, alpha or leak,alpha")
+    p.add_argument("--skip", default="", help="comma-separated steps to leave out: fit, rt, groups, "
+                                              "events, report")
+    p.add_argument("--recovery", metavar="DIR", help="a foretell recover output to show in the report")
+    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
+    p.add_argument("--chains", type=_count(2), default=4, help="Markov chains per Bayesian model")
+    p.add_argument("--seed", type=_count(0), default=0, help="seed of every random step (>= 0)")
+    p.add_argument("--jobs", type=_jobs, default=1, help="work in parallel (-1: all cores)")
+    p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
+                   help="rows of fit/trials.csv (see foretell fit --help)")
     p.add_argument("--force", action="store_true",
                    help="replace an output folder that foretell wrote before")
 
@@ -196,6 +225,42 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true",
                    help="replace an output folder that foretell wrote before")
 
+    p = command("groups", "learning curves by group, and whether the groups learn differently",
+                "foretell groups study.csv --task lantern-relay --out groups/",
+                "foretell groups study.csv --task lantern-relay --out groups/ --fits results/ "
+                "--reference control",
+                more="Per participant and block: accuracy, optimal_rate, gain_bits, inv_temp,\n"
+                     "median_rt, depth; hierarchical Bayesian group x block contrasts with a\n"
+                     "permutation cross-check (Holm), and the between-group model test.\n")
+    _add_log_options(p)
+    _add_screen_options(p)
+    p.add_argument("--out", required=True, help="folder for the tables and figures")
+    p.add_argument("--fits", metavar="DIR", help="a foretell fit output to reuse (else the fits are run)")
+    p.add_argument("--models", help="comma-separated model ids when the fits are run here")
+    p.add_argument("--reference", help="the group the others are contrasted with (default: the first)")
+    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
+                   help="fit the hierarchical Bayesian models (default: yes)")
+    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
+    p.add_argument("--chains", type=_count(2), default=4, help="Markov chains per model")
+    p.add_argument("--seed", type=_count(0), default=0, help="seed of the samplers and permutations (>= 0)")
+    p.add_argument("--jobs", type=_jobs, default=1, help="fits and chains in parallel (-1: all cores)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an output folder that foretell wrote before")
+
+    p = command("events", "write BIDS events files with per-trial learner quantities for the EEG analysis",
+                "foretell events study.csv --task lantern-relay --out events/ --fits results/",
+                "foretell events study.csv --task lantern-relay --out events/ --models count-1,mix-3",
+                more="One sub-<label>[_ses-<label>]_task-<label>_events.tsv (and .json sidecar) per\n"
+                     "participant and session: a guess row and a reveal row per trial, with each\n"
+                     "model's entropy, surprise, guess probability and context.\n")
+    _add_log_options(p)
+    p.add_argument("--out", required=True, help="folder for the events files")
+    p.add_argument("--models", help="comma-separated model ids (default: the fitted models, or the "
+                                    "task's set without leaky models when no --fits is given)")
+    p.add_argument("--fits", metavar="DIR", help="a foretell fit output whose learner parameters are used")
+    p.add_argument("--force", action="store_true",
+                   help="replace an output folder that foretell wrote before")
+
     p = command("recover", "design check: can the models and parameters be told apart on this task?",
                 "foretell recover --task lantern-relay --participants 40 --trials 200,600 "
                 "--models count-0,count-1,count-2 --out design/",
@@ -222,12 +287,17 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _load(args: argparse.Namespace, measures: Sequence[str] = ()):
-    """Return (task, validated log) after printing the log's warnings once."""
+def _load(args: argparse.Namespace, measures: Sequence[str] = (), check_task=None):
+    """Return (task, validated log) after printing the log's warnings once.
+
+    ``check_task`` (a function of the task) runs before the log is read.
+    """
     from .logs import RTScreen, load_log
     from .tasks import load_task
 
     task = load_task(args.task)
+    if check_task is not None:
+        check_task(task)
     defaults = RTScreen()
     screen = RTScreen(
         floor=defaults.floor if getattr(args, "rt_floor", None) is None else args.rt_floor,
@@ -297,7 +367,9 @@ def _options(args: argparse.Namespace) -> dict[str, object]:
 def _cmd_fit(args: argparse.Namespace) -> int:
     from .cluster import job_backend
 
-    task, log = _load(args)
+    from .analysis import check_guess_design
+
+    task, log = _load(args, check_task=check_guess_design)
     with job_backend(args.backend, args.scheduler):
         _run_fit(task, log, args, args.out, [args.log, *_task_inputs(task)])
     return 0
@@ -353,7 +425,7 @@ def _cmd_recover(args: argparse.Namespace) -> int:
 
 
 def _cmd_rt(args: argparse.Namespace) -> int:
-    from .outputs import check_output_dir, provenance, write_outputs
+    from .outputs import check_output_dir, netcdf_bytes, provenance, write_outputs
     from .rt import analyse_rt
 
     measures = [] if args.measure == "rt" else [args.measure]
@@ -361,7 +433,7 @@ def _cmd_rt(args: argparse.Namespace) -> int:
     fits_path = Path(args.fits) / "fits.csv" if args.fits else None
     inputs = [args.log, *_task_inputs(task), *([str(fits_path)] if fits_path else [])]
     check_output_dir(args.out, inputs=inputs, force=args.force)
-    fits = _read_fits(fits_path) if fits_path else None
+    fits = _read_fits(fits_path, "--fits") if fits_path else None
     started = time.perf_counter()
     result = analyse_rt(log, task, _csv_list(args.models), measure=args.measure, locked=args.locked,
                         fits=fits, bayes=args.bayes, draws=args.draws, chains=args.chains,
@@ -369,7 +441,7 @@ def _cmd_rt(args: argparse.Namespace) -> int:
                         log_transform=True if args.measure == "rt" else args.log_transform)
     for line in result.notes:
         _say(f"note: {line}")
-    posteriors = {f"posterior_{model}.nc": _netcdf(idata) for model, idata in result.posteriors.items()}
+    posteriors = {f"posterior_{model}.nc": netcdf_bytes(idata) for model, idata in result.posteriors.items()}
     manifest = provenance("rt", _options(args), inputs, {"rt_s": round(time.perf_counter() - started, 3)})
     path = write_outputs(args.out, result.tables(), extra=posteriors, manifest=manifest,
                          texts={"summary.txt": "\n".join(result.notes) + "\n"},
@@ -379,22 +451,70 @@ def _cmd_rt(args: argparse.Namespace) -> int:
     return 0
 
 
-def _netcdf(idata) -> bytes:
-    """Return an ArviZ InferenceData as netCDF bytes."""
-    import tempfile
+def _cmd_groups(args: argparse.Namespace) -> int:
+    from .figures import figure_png
+    from .groups import compare_groups
+    from .outputs import check_output_dir, provenance, write_outputs
 
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "posterior.nc"
-        idata.to_netcdf(str(path))
-        return path.read_bytes()
+    task, log = _load(args)
+    fit_dir = Path(args.fits) if args.fits else None
+    names = ("fits", "blocks", "winners", "contexts")
+    inputs = [args.log, *_task_inputs(task), *([str(fit_dir / f"{n}.csv") for n in names] if fit_dir else [])]
+    check_output_dir(args.out, inputs=inputs, force=args.force)
+    started = time.perf_counter()
+    if fit_dir is not None:
+        fitted = {n: _read_fits(fit_dir / f"{n}.csv", "--fits") for n in names}
+    else:
+        from .analysis import fit
+
+        fitted = fit(log, task, _csv_list(args.models), seed=args.seed, n_jobs=args.jobs,
+                     progress=sys.stderr.isatty())
+    cores = max(1, min(args.chains, args.jobs if args.jobs > 0 else 2))
+    result = compare_groups(log, task, fitted, reference=args.reference, draws=args.draws,
+                            chains=args.chains, tune=args.draws, seed=args.seed, bayes=args.bayes,
+                            cores=cores, progress=sys.stderr.isatty())
+    for line in result.notes:
+        _say(f"note: {line}")
+    figures = {f"figures/{n}.png": figure_png(f) for n, f in result.figures.items()}
+    manifest = provenance("groups", _options(args), inputs,
+                          {"groups_s": round(time.perf_counter() - started, 3)})
+    path = write_outputs(args.out, result.tables(), extra=figures, manifest=manifest,
+                         texts={"summary.txt": "".join(f"{n}\n" for n in result.notes)},
+                         inputs=inputs, force=args.force)
+    _say(f"tables and figures written to {path}/")
+    print("".join(f"{n}\n" for n in result.notes), end="")
+    return 0
 
 
-def _read_fits(path: Path):
-    """Return the fits table of a foretell fit output folder (InputError naming the file otherwise)."""
+def _cmd_events(args: argparse.Namespace) -> int:
+    from .events import events_tables, sidecar_json, to_tsv
+    from .outputs import check_output_dir, provenance, write_outputs
+    from .pipeline import event_models
+
+    task, log = _load(args)
+    fits_path = Path(args.fits) / "fits.csv" if args.fits else None
+    inputs = [args.log, *_task_inputs(task), *([str(fits_path)] if fits_path else [])]
+    check_output_dir(args.out, inputs=inputs, force=args.force)
+    fits = _read_fits(fits_path, "--fits") if fits_path else None
+    models = _csv_list(args.models) or event_models(fits, task)
+    result = events_tables(log, task, models, fits=fits)
+    for line in result.warnings:
+        _say(f"warning: {line}")
+    files = {name: to_tsv(frame) for name, frame in result.files.items()}
+    files |= {name: sidecar_json(d) for name, d in result.sidecars.items()}
+    path = write_outputs(args.out, {"participants": result.labels}, extra=files,
+                         manifest=provenance("events", _options(args), inputs), inputs=inputs,
+                         force=args.force)
+    _say(f"{len(result.files)} events files written to {path}/ (participants.csv maps ids to BIDS labels)")
+    return 0
+
+
+def _read_fits(path: Path, option: str = "--from-fits"):
+    """Return a table of a foretell fit output folder (InputError naming the file otherwise)."""
     import pandas as pd
 
     if not path.is_file():
-        raise InputError("no fits.csv here: --from-fits takes the output folder of foretell fit",
+        raise InputError(f"no {path.name} here: {option} takes the output folder of foretell fit",
                          path=str(path))
     try:
         return pd.read_csv(path)
@@ -403,19 +523,61 @@ def _read_fits(path: Path):
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import demo_log, demo_task, demo_truth, recovery_text
+    from .demo import DEMO_RT_MODELS, demo_log, demo_task, demo_truth, recovery_text
+    from .logs import validate_log
+    from .pipeline import DEMO_CHAINS, DEMO_DRAWS, analyze
 
     task = demo_task()
-    _say(f"demo study: task {task.name!r} ({', '.join(task.symbols)}); simulated participants, "
-         "fitted with the default model set")
-    result = _run_fit(task, demo_log(), args, args.out, [])
-    print()
-    print(recovery_text(result.winners, demo_truth()))
+    _say(f"demo study: task {task.name!r} ({', '.join(task.symbols)}); 28 simulated participants "
+         "in two invented groups, fitted with the default model set")
+    log = validate_log(demo_log(), task, source="demo_log.csv")
+    result = analyze(log, task, args.out, rt_models=DEMO_RT_MODELS, skip=_csv_list(args.skip) or (),
+                     n_jobs=args.jobs, draws=DEMO_DRAWS, tune=DEMO_DRAWS, chains=DEMO_CHAINS,
+                     provisional=True, force=args.force, trials=args.trials,
+                     manifest=_run_record(args, []), progress=sys.stderr.isatty())
+    _report_run(result, args.out)
+    if result.fit is not None:
+        print()
+        print(recovery_text(result.fit.winners, demo_truth()))
     return 0
 
 
+def _cmd_analyze(args: argparse.Namespace) -> int:
+    from .pipeline import analyze
+
+    task, log = _load(args)
+    inputs = [args.log, *_task_inputs(task)]
+    result = analyze(log, task, args.out, models=_csv_list(args.models),
+                     rt_models=_csv_list(args.rt_models), free=_csv_list(args.free) or (),
+                     skip=_csv_list(args.skip) or (), recovery=args.recovery, seed=args.seed,
+                     n_jobs=args.jobs, draws=args.draws, chains=args.chains, tune=args.draws,
+                     force=args.force, inputs=inputs, trials=args.trials,
+                     manifest=_run_record(args, inputs), progress=sys.stderr.isatty())
+    _report_run(result, args.out)
+    return 0
+
+
+def _run_record(args: argparse.Namespace, inputs: Sequence[str]) -> dict[str, object]:
+    """Return the manifest's provenance of this command (timings are added by the step runner)."""
+    from .outputs import provenance
+
+    return provenance(args.command, _options(args), inputs)
+
+
+def _report_run(result, out: str) -> None:
+    """Print the notes, the fit summary and where the report is."""
+    for line in result.notes:
+        _say(f"note: {line}")
+    if result.fit is not None:
+        print(result.fit.summary)
+    if result.report_html is not None:
+        _say(f"report: {Path(out) / 'report.html'}")
+    _say(f"results written to {out}/")
+
+
 COMMANDS = {"demo": _cmd_demo, "task": _cmd_task, "check": _cmd_check, "fit": _cmd_fit,
-            "recover": _cmd_recover, "rt": _cmd_rt}
+            "recover": _cmd_recover, "rt": _cmd_rt, "analyze": _cmd_analyze, "groups": _cmd_groups,
+            "events": _cmd_events}
 
 
 class _Terminated(KeyboardInterrupt):

@@ -25,6 +25,8 @@ from foretell.tasks import Task, load_task, shipped_tasks
 DEMO_SEED = 20240611
 DEMO_PARTICIPANTS = 28
 DEMO_BLOCKS = 5
+DEMO_RT_MODELS = ("count-0", "count-1", "count-2", "mix-4")
+"""The learner models whose reaction-time models the demo samples (a subset, to stay within minutes)."""
 _DATA = Path(__file__).parent / "data"
 
 _RESTED_RT = RTLaw()

@@ -132,6 +132,14 @@ def provenance(command: str, options: Mapping[str, object], inputs: Iterable[str
             "timings_s": dict(timings or {})}
 
 
+def netcdf_bytes(idata: object) -> bytes:
+    """Return an ArviZ InferenceData as the bytes of a netCDF file (to write with the other outputs)."""
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "posterior.nc"
+        idata.to_netcdf(str(path))
+        return path.read_bytes()
+
+
 def file_sha256(path: str | Path) -> str:
     """Return the SHA-256 hex digest of a file's bytes."""
     digest = hashlib.sha256()

@@ -1,0 +1,78 @@
+"""Scale: many long sessions on one machine, and the same participants on a two-worker Dask cluster.
+
+Run by hand (PYTHONPATH=src python benchmarks/scale.py [--participants 200] [--trials 1000,2500,5000]).
+Prints, for each session length, the wall time of foretell.fitting.fit_participants with the default
+models (CV and per-block refits included), the time per 1,000 trials and the peak resident memory of
+the process tree; then the same participants on a distributed.LocalCluster with two workers against
+local joblib with two processes (the ratio, and whether the tables are identical). The load average
+is printed beside every figure: the ratios move with what else the machine runs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import time
+
+import pandas as pd
+
+from foretell.cluster import job_backend
+from foretell.fitting import fit_participants
+from foretell.logs import validate_log
+from foretell.simulate import simulate_participants
+from foretell.tasks import load_task
+
+
+def peak_mb() -> float:
+    """Return the peak resident memory of this process and its finished children, in MB."""
+    own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return max(own, children) / 1024
+
+
+def study(task, n_participants: int, n_trials: int, seed: int = 1):
+    """Return a validated simulated study: one session of n_trials per participant."""
+    frame, _ = simulate_participants(task, n_participants, max(n_trials // 100, 1),
+                                     models=["count-0", "count-1", "count-2", "mix-3"],
+                                     seed=seed, block_length=min(100, n_trials))
+    return validate_log(frame, task)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--participants", type=int, default=200)
+    parser.add_argument("--trials", default="1000,2500,5000")
+    parser.add_argument("--cluster-trials", type=int, default=500)
+    args = parser.parse_args()
+    task = load_task("tide-gauge")
+    print(f"{args.participants} participants, default models, CV and per-block refits, n_jobs=2")
+    print(f"{'trials':>7} {'wall s':>8} {'s per 1,000 trials':>19} {'peak MB':>8} {'load':>5}")
+    for n_trials in (int(t) for t in args.trials.split(",")):
+        log = study(task, args.participants, n_trials)
+        start = time.perf_counter()
+        fit_participants(log, task, seed=0, n_jobs=2, progress=False)
+        wall = time.perf_counter() - start
+        per_k = wall / (args.participants * n_trials / 1000)
+        print(f"{n_trials:>7} {wall:>8.1f} {per_k:>19.4f} {peak_mb():>8.0f} {os.getloadavg()[0]:>5.1f}")
+
+    import distributed
+
+    log = study(task, args.participants, args.cluster_trials, seed=2)
+    start = time.perf_counter()
+    local = fit_participants(log, task, seed=0, n_jobs=2, progress=False)
+    local_s = time.perf_counter() - start
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster:
+        start = time.perf_counter()
+        with job_backend("dask", cluster.scheduler_address):
+            remote = fit_participants(log, task, seed=0, n_jobs=2, progress=False)
+        cluster_s = time.perf_counter() - start
+    same = all(getattr(local, name).equals(getattr(remote, name)) for name in ("fits", "blocks"))
+    print(f"\n{args.participants} participants x {args.cluster_trials} trials: local joblib (2 processes) "
+          f"{local_s:.1f} s, LocalCluster (2 workers) {cluster_s:.1f} s, ratio {cluster_s / local_s:.2f}; "
+          f"tables identical: {same}; load {os.getloadavg()[0]:.1f}")
+
+
+if __name__ == "__main__":
+    pd.set_option("display.width", 120)
+    main()
