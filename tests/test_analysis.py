@@ -122,14 +122,40 @@ def test_summary_reports_convergence(result) -> None:
     assert "optimiser:" in result.summary
 
 
-def test_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_demo_fits_and_compares(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out), "--jobs", "2"]) == 0
+    assert main(["demo", "--out", str(out), "--jobs", "2", "--skip", "rt,groups,events,report"]) == 0
     text = capsys.readouterr().out
     assert "group rested" in text and "group sleep-restricted" in text
     assert "check against the simulation's truth" in text
-    fits = pd.read_csv(out / "fits.csv")
+    fits = pd.read_csv(out / "fit" / "fits.csv")
     assert fits["participant"].nunique() == 28
     # the demo's two groups differ in how they learn: the family-level selection must see it
-    fam = pd.read_csv(out / "families.csv").set_index(["group", "family"])["protected_exceedance"]
+    fam = pd.read_csv(out / "fit" / "families.csv").set_index(["group", "family"])["protected_exceedance"]
     assert fam[("rested", "deep")] > 0.9 and fam[("sleep-restricted", "shallow")] > 0.9
+
+
+def test_analyze_writes_every_step_and_the_report(study, tmp_path: Path,
+                                                  capsys: pytest.CaptureFixture[str]) -> None:
+    log = tmp_path / "study.csv"
+    study.to_csv(log, index=False)
+    out = tmp_path / "all"
+    code = main(["analyze", str(log), "--task", str(TASK_PATH), "--out", str(out), "--models",
+                 "count-0,count-1", "--no-bayes"])
+    assert code == 0, capsys.readouterr().err
+    for path in ("validation/summary.csv", "fit/fits.csv", "rt/rt_compare.csv", "groups/curves.csv",
+                 "events/participants.csv", "report.html", "manifest.json"):
+        assert (out / path).is_file(), path
+    assert list(out.glob("events/sub-*_task-tidegauge_events.tsv"))
+    html = (out / "report.html").read_text()
+    assert "Model comparison" in html and "http://" not in html and "<script" not in html
+    assert "report.html" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # the full demo with its posterior sampling (a few minutes); the two tests above cover the same code
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--jobs", "2"]) == 0
+    assert (out / "report.html").is_file() and (out / "rt" / "rt_compare.csv").is_file()
+    assert "Provisional" in (out / "report.html").read_text()

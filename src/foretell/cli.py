@@ -165,6 +165,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--skip", default="", help="comma-separated steps to leave out: fit, rt, groups, "
                                               "events, report")
     p.add_argument("--recovery", metavar="DIR", help="a foretell recover output to show in the report")
+    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
+                   help="fit the hierarchical Bayesian models of RTs and groups (default: yes)")
     p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
     p.add_argument("--chains", type=_count(2), default=4, help="Markov chains per Bayesian model")
     p.add_argument("--seed", type=_count(0), default=0, help="seed of every random step (>= 0)")
@@ -550,7 +552,7 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
     result = analyze(log, task, args.out, models=_csv_list(args.models),
                      rt_models=_csv_list(args.rt_models), free=_csv_list(args.free) or (),
                      skip=_csv_list(args.skip) or (), recovery=args.recovery, seed=args.seed,
-                     n_jobs=args.jobs, draws=args.draws, chains=args.chains, tune=args.draws,
+                     n_jobs=args.jobs, bayes=args.bayes, draws=args.draws, chains=args.chains, tune=args.draws,
                      force=args.force, inputs=inputs, trials=args.trials,
                      manifest=_run_record(args, inputs), progress=sys.stderr.isatty())
     _report_run(result, args.out)

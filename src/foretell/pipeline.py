@@ -64,8 +64,8 @@ class AnalysisResult:
 def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path, out: str | Path | None = None,
             *, models: Sequence[str] | None = None, rt_models: Sequence[str] | None = None,
             free: Iterable[str] = (), skip: Iterable[str] = (), recovery: str | Path | None = None,
-            seed: int = 0, n_jobs: int = 1, draws: int = 1000, chains: int = 4, tune: int = 1000,
-            provisional: bool = False, force: bool = False, inputs: Sequence[str | Path] = (),
+            seed: int = 0, n_jobs: int = 1, bayes: bool = True, draws: int = 1000, chains: int = 4,
+            tune: int = 1000, provisional: bool = False, force: bool = False, inputs: Sequence[str | Path] = (),
             manifest: Mapping[str, object] | None = None, progress: bool | None = None,
             trials: str = "best") -> AnalysisResult:
     """Return (and with ``out``, write) the whole analysis of a study.
@@ -81,7 +81,9 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
     (:func:`foretell.report.build_report`). ``skip`` names steps of
     :data:`STEPS` to leave out. ``recovery`` is a ``foretell recover`` output
     folder whose tables are copied under ``recovery/`` and shown in the
-    report. ``draws``, ``chains``, ``tune`` go to the Bayesian models;
+    report. ``bayes`` runs the hierarchical Bayesian models of the RT and
+    group steps (without it: summed BIC and permutation tests only);
+    ``draws``, ``chains``, ``tune`` go to those models;
     ``provisional`` marks their comparisons provisional in the report (demo
     mode). ``inputs`` are files whose SHA-256 the manifest records and that
     ``out`` may not hold.
@@ -141,7 +143,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
 
                     fitted = results.get("fit")
                     result = analyse_rt(log, task, rt_models or _fitted_models(fitted, models),
-                                        fits=fitted.fits if fitted is not None else None, bayes=True,
+                                        fits=fitted.fits if fitted is not None else None, bayes=bayes,
                                         draws=draws, chains=chains, tune=tune, seed=seed, n_jobs=n_jobs,
                                         progress=False)
                     results["rt"] = result
@@ -155,7 +157,8 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
                     from .groups import compare_groups
 
                     result = compare_groups(log, task, results.get("fit"), draws=draws, chains=chains,
-                                            tune=tune, seed=seed, progress=False)
+                                            tune=tune, seed=seed, bayes=bayes, progress=False,
+                                            cores=max(1, min(chains, n_jobs if n_jobs > 0 else 2)))
                     results["groups"] = result
                     tables |= {f"groups/{k}": v for k, v in result.tables().items()}
                     from .figures import figure_png
@@ -188,7 +191,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
     timings["total_s"] = round(time.perf_counter() - started, 3)
     settings = {"task": task.name, "models": list(models) if models else None,
                 "rt_models": list(rt_models) if rt_models else None, "free": list(free),
-                "skip": sorted(skip), "seed": seed, "draws": draws, "chains": chains, "tune": tune,
+                "skip": sorted(skip), "seed": seed, "bayes": bayes, "draws": draws, "chains": chains, "tune": tune,
                 "provisional": provisional, "trials": trials}
     result = AnalysisResult(tables, texts, files, results.get("fit"), results.get("rt"),
                             results.get("groups"), results.get("events"), tuple(notes), settings)
