@@ -159,3 +159,28 @@ def test_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert main(["demo", "--out", str(out), "--jobs", "2"]) == 0
     assert (out / "report.html").is_file() and (out / "rt" / "rt_compare.csv").is_file()
     assert "Provisional" in (out / "report.html").read_text()
+
+
+def test_drifting_choice_determinism_is_not_mistaken_for_a_change_of_model() -> None:
+    # Depth-2 learners whose inv_temp rises from 0.3 to 5 over five blocks: per-block refits of every
+    # parameter must see the depth-2 learner from block 2 on, and must not call count-0 in block 1.
+    task = load_task(TASK_PATH)
+    rng = np.random.default_rng(21)
+    temps = [0.3, 0.8, 1.5, 3.0, 5.0]
+    rows = []
+    for p in range(10):
+        x = task.sample(500, seed=300 + p)
+        pred = Counting(depth=2).next_proba(x, 2)
+        for t in range(500):
+            probs = choice_proba(pred[t:t + 1], temps[t // 100], 0.02)[0]
+            rows.append({"participant": f"d{p:02d}", "block": t // 100 + 1, "trial": t + 1,
+                         "stimulus": task.symbols[x[t]],
+                         "response": task.symbols[int(rng.random() > probs[0])]})
+    result = foretell.fit(pd.DataFrame(rows), task, ["count-0", "count-1", "count-2"], seed=0, n_starts=2)
+    per_block = result.winners[result.winners["block"] != "all"]
+    later = per_block[per_block["block"].astype(int) >= 2]
+    assert (later["best_model"] == "count-2").mean() > 0.5
+    first = per_block[per_block["block"] == "1"]
+    called_count0 = (first["best_model"] == "count-0") & first["strength"].isin(["positive", "strong",
+                                                                                "very-strong"])
+    assert called_count0.mean() < 0.5

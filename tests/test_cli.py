@@ -298,3 +298,31 @@ def test_recover_from_fits_and_its_bad_inputs(tmp_path: Path, capsys) -> None:
     assert main(["recover", "--task", "tide-gauge", "--participants", "3", "--trials", "60",
                  "--models", "count-0", "--from-fits", str(tmp_path), "--out", str(tmp_path / "f")]) == 1
     assert "fits.csv" in capsys.readouterr().err
+
+
+def test_reaction_design_source_not_given_and_fit_refused(tmp_path: Path, capsys) -> None:
+    assert main(["task", "keypad-chase"]) == 0
+    assert "source not given" in capsys.readouterr().out
+    log = tmp_path / "srt.csv"
+    log.write_text("participant,block,trial,stimulus,response,rt\n"
+                   + "".join(f"p01,1,{t},north,north,0.4{t % 10}\n" for t in range(1, 30)))
+    code = main(["fit", str(log), "--task", "keypad-chase", "--out", str(tmp_path / "r")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "reaction design" in err[0]
+    assert main(["check", str(log), "--task", "keypad-chase"]) == 0
+
+
+def test_rt_models_another_measure_column(tmp_path: Path, capsys) -> None:
+    import numpy as np
+    import pandas as pd
+
+    log = _study(tmp_path)
+    frame = pd.read_csv(log, keep_default_na=False, na_values={"rt": [""]})
+    frame["p3_amp"] = np.random.default_rng(0).normal(5.0, 1.0, len(frame)).round(3)
+    frame.to_csv(log, index=False)
+    out = tmp_path / "p3"
+    assert main(["rt", str(log), "--task", "tide-gauge", "--out", str(out), "--measure", "p3_amp",
+                 "--locked", "reveal", "--models", "count-0,count-1", "--no-bayes"]) == 0
+    assert {"p3_amp_fits.csv", "p3_amp_compare.csv", "regressors.csv"} <= {p.name for p in out.iterdir()}
+    err = capsys.readouterr().err.splitlines()
+    assert not any("not part of the log format" in line and "p3_amp" in line for line in err)

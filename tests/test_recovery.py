@@ -264,3 +264,12 @@ def test_figures(twins) -> None:
     texts = [t.get_text() for t in figs["confusion_60"].axes[0].texts]
     assert texts.count("0.50") == 4
     assert figs["params_90"].axes[0].get_xscale() == "log"  # inv_temp spans orders of magnitude
+
+
+def test_palette_colours_stay_apart_and_labels_stay_readable():
+    # Okabe & Ito (2008) colours, then their tints: sixteen distinct colours; text contrast by the
+    # WCAG 2.0 relative-luminance rule (W3C, 2008): black on yellow, white on black.
+    from foretell.figures import colour, text_colour
+
+    assert len({colour(i) for i in range(16)}) == 16
+    assert text_colour("#000000") == "white" and text_colour("#F0E442") == "black"

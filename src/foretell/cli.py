@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from . import __version__
-from .errors import ForetellError, InputError, UsageError
+from .errors import ForetellError, InputError, UsageError, printable
 
 EXAMPLES = """\
 examples:
@@ -313,7 +313,7 @@ def _load(args: argparse.Namespace, measures: Sequence[str] = (), check_task=Non
 
 
 def _say(line: str) -> None:
-    print(line, file=sys.stderr)
+    print(printable(line), file=sys.stderr)
 
 
 def _cmd_task(args: argparse.Namespace) -> int:

@@ -28,7 +28,12 @@ class Problem:
             where += f":{self.line}"
         if self.column is not None:
             where += f": column '{self.column}'"
-        return f"{where}: {self.message}"
+        return printable(f"{where}: {self.message}")
+
+
+def printable(text: str) -> str:
+    """Return ``text`` with control and other non-printing characters escaped (\\x0b), on one line."""
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
 
 
 class InputError(ForetellError):

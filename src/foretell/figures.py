@@ -46,8 +46,26 @@ def new_figure(n_panels: int = 1, *, width: float = 4.2, height: float = 3.6) ->
 
 
 def colour(i: int) -> str:
-    """Return the i-th Okabe-Ito colour (cycling)."""
-    return OKABE_ITO[i % len(OKABE_ITO)]
+    """Return the i-th colour: the Okabe-Ito palette, then its tints (halfway to white), then cycling.
+
+    Sixteen colours that stay apart; beyond them colours repeat, so a figure
+    with more categories should also label them in place.
+    """
+    base = OKABE_ITO[i % len(OKABE_ITO)]
+    if (i // len(OKABE_ITO)) % 2 == 0:
+        return base
+    rgb = [int(base[k:k + 2], 16) for k in (1, 3, 5)]
+    return "#" + "".join(f"{(c + 255) // 2:02X}" for c in rgb)
+
+
+def text_colour(background: str) -> str:
+    """Return black or white, whichever reads better on ``background`` (relative luminance, WCAG 2.0)."""
+    def linear(c: float) -> float:
+        return c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4
+
+    r, g, b = (linear(int(background[k:k + 2], 16) / 255) for k in (1, 3, 5))
+    luminance = 0.2126 * r + 0.7152 * g + 0.0722 * b
+    return "black" if (luminance + 0.05) / 0.05 >= 1.05 / (luminance + 0.05) else "white"
 
 
 def axis_label(name: str, what: str = "") -> str:

@@ -30,7 +30,7 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from foretell.errors import InputError, Problem, UsageError
-from foretell.figures import HEATMAP, colour, confusion_heatmap, figure_png, new_figure
+from foretell.figures import HEATMAP, colour, confusion_heatmap, figure_png, new_figure, text_colour
 from foretell.labels import ALL, ROOT
 from foretell.summaries import CLEAR_PXP, verdict
 from foretell.text import number, plural
@@ -385,7 +385,8 @@ def winners_heatmap(winners: pd.DataFrame) -> Figure:
     ax.imshow(np.ma.masked_invalid(grid), cmap=palette, vmin=-0.5, vmax=max(len(models), 1) - 0.5,
               aspect="auto", interpolation="nearest")
     for (i, j), label in np.ndenumerate(text):
-        ax.text(j, i, label, ha="center", va="center", fontsize="x-small", color="black")
+        shade = colour(int(grid[i, j])) if np.isfinite(grid[i, j]) else "#D9D9D9"
+        ax.text(j, i, label, ha="center", va="center", fontsize="x-small", color=text_colour(shade))
     ax.set_xticks(range(len(units)), units, rotation=30, ha="right")
     ax.set_yticks(range(len(people)), people)
     ax.set_xlabel("block")

@@ -8,22 +8,16 @@ compute, for every trial at once, the counts each node had seen before it.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from functools import cached_property
 
+import numba
 import numpy as np
 from scipy.special import gammaln
 
 from foretell.errors import UsageError
 
 MAX_CODE_DEPTH = 20  # and m**depth must stay inside int64 for the base-m context codes
-# Leaky counts: block length B = max(MIN_SCAN_BLOCK, isqrt(n) // SCAN_BLOCK_DIVISOR) of the
-# blocked recursion: B Python-level steps over n/B blocks, then a log2(n/B)-pass scan of the
-# blocks. Measured on 5,000 and 100,000 trials (m = 3, depths 0-6): divisors 2-8 within timing
-# noise of each other, 1 up to 2x slower.
-MIN_SCAN_BLOCK = 8
-SCAN_BLOCK_DIVISOR = 4
 
 
 def check_sequence(x: np.ndarray, n_symbols: int) -> np.ndarray:
@@ -149,132 +143,36 @@ class Grouping:
 
         count_t = (1 - leak) count_{t-1} + new_t for every node on every trial,
         so before trial t the observation of trial s weighs r^(t-1-s),
-        r = 1 - leak. Along one node's trials t_1 < t_2 < ... (sorted
-        positions p) the counts obey the first-order recursion
-        z_p = g_p z_{p-1} + h_p e_{y_{p-1}}, h_p = r^(t_p - t_{p-1} - 1),
-        g_p = r h_p (g = h = 0 at a node's first trial). It is solved in blocks
-        of B consecutive positions (:meth:`_scan_layout`). The count at the
-        end of block c obeys Y_c = P_c Y_{c-1} + E_c, with
-        P_c = r^(t_end(c) - t_end(c-1)) (0 unless both ends are of one node)
-        and E_c = sum r^(t_end(c) - 1 - t_{p-1}) e_{y_{p-1}} over the block's
-        positions p in the end's run (a weighted bincount); Y is a parallel prefix
-        scan over the blocks (composition (P2, Y2) o (P1, Y1) = (P2 P1, P2 Y1 + Y2);
-        Hillis & Steele, 1986, from memory), stopped once every remaining P is
-        exactly 0. Each block then starts from Y_{c-1} and the plain recursion
-        runs inside every block at once (B vectorised steps). Powers are taken
-        from :func:`_power_table` (libm's pow of the exact integer exponents, to
-        one ulp). Nothing is truncated: this is the recursion up to a few
-        roundings per position.
-        When 1 - leak rounds to 1 these are the plain counts. Rows of trials
+        r = 1 - leak. Along one node's trials t_1 < t_2 < ... the counts obey
+        the first-order recursion z_p = r^(t_p - t_{p-1}) z_{p-1} +
+        r^(t_p - t_{p-1} - 1) e_{y_{p-1}} (z = 0 at a node's first trial),
+        run in one compiled pass over the sorted positions (O(n m); powers by
+        libm's pow of the exact integer gaps). Nothing is truncated. When
+        1 - leak rounds to 1 these are the plain counts. Rows of trials
         outside the grouping are 0; the array is new and writable.
         """
         r = 1.0 - leak
         if r == 1.0 or len(self.order) == 0:
             return np.array(self.prior_counts)
-        lay = self._scan_layout
-        m, n_blocks = self.n_symbols, lay.step_power.shape[1]
-        powers = _power_table(r, lay.largest_power)
-        weight = np.take(powers, lay.tail_power, mode="clip")
-        carry = np.bincount(lay.tail_slot, weight, minlength=m * n_blocks).reshape(m, n_blocks)
-        carry_gain = np.take(powers, lay.end_power, mode="clip")
-        step = 1
-        while step < n_blocks and carry_gain[step:].any():
-            carry[:, step:] += carry_gain[step:] * carry[:, :-step]
-            carry_gain[step:] *= carry_gain[:-step]
-            step *= 2
-        z = np.zeros((lay.block, m, n_blocks))
-        gain = np.take(powers, lay.step_power, mode="clip")  # h
-        z.ravel()[lay.input_slot] = gain.ravel()  # the inputs h_p e_{y_{p-1}}
-        gain *= r  # g
-        z[0, :, 1:] += gain[0, 1:] * carry[:, :-1]  # block c starts from Y_{c-1}
-        rows, tmp = list(z), np.empty_like(carry)
-        for before, row, g in zip(rows, rows[1:], gain[1:]):  # step j of the recursion, all blocks
-            np.multiply(before, g, out=tmp)
-            row += tmp
-        counts = np.zeros((self.n_trials + 1, m))  # the last row takes the padding
-        counts.ravel()[lay.destination] = z.ravel()
-        return counts[:-1]
-
-    @cached_property
-    def _scan_layout(self) -> _ScanLayout:
-        """Return the blocked layout of the sorted positions used by :meth:`leaky_prior_counts`.
-
-        Sorted position p = c B + j (padded to B R positions) sits at [j, c] of
-        (B, R) arrays, so step j of the recursion is one contiguous row over all
-        R blocks. Depends only on the grouping; computed once.
-        """
-        n, m, order, first = len(self.order), self.n_symbols, self.order, self.first
-        block = max(MIN_SCAN_BLOCK, math.isqrt(n) // SCAN_BLOCK_DIVISOR)
-        n_blocks = -(-n // block)
-
-        def blocked(values: np.ndarray, pad: int = 0) -> np.ndarray:  # sorted order -> (B, R)
-            out = np.full(block * n_blocks, pad, dtype=np.int64)
-            out[:n] = values
-            return out.reshape(n_blocks, block).T.copy()
-
-        gap = np.zeros(n, dtype=np.int64)  # t_p - t_{p-1}, kept where p continues its node's run
-        np.subtract(order[1:], order[:-1], out=gap[1:], where=first[1:] < np.arange(1, n))
-        ends = np.minimum(np.arange(block - 1, n_blocks * block, block), n - 1)  # each block's last
-        end_of = np.repeat(ends, block)[:n]
-        tail = np.where((gap > 0) & (first == first[end_of]), order[end_of] - order + gap, 0)
-        end_power = np.zeros(n_blocks, dtype=np.int64)
-        end_power[1:] = np.where(first[ends[1:]] <= ends[:-1],
-                                 order[ends[1:]] - order[ends[:-1]] + 1, 0)
-        step, tail = blocked(gap), blocked(tail)
-        prev_symbol, cols = blocked(np.concatenate(([0], self.symbols[:-1]))), np.arange(n_blocks)
-        time = blocked(order, self.n_trials)
-        return _ScanLayout(
-            block=block, step_power=step, tail_power=tail.ravel(), end_power=end_power,
-            largest_power=int(max(step.max(), tail.max(), end_power.max())),
-            tail_slot=(prev_symbol * n_blocks + cols).ravel(),
-            input_slot=((np.arange(block)[:, None] * m + prev_symbol) * n_blocks + cols).ravel(),
-            destination=((time * m)[:, None, :] + np.arange(m)[:, None]).ravel())
+        counts = np.zeros((self.n_trials, self.n_symbols))
+        _leaky_pass(self.order, self.first, self.symbols, r, counts)
+        return counts
 
 
-@dataclass(frozen=True, eq=False)
-class _ScanLayout:
-    """Index arrays of the blocked leaky-count recursion (see Grouping._scan_layout).
-
-    ``*_power`` are indices into :func:`_power_table`: 1 + the exponent of r,
-    0 where the term does not exist. ``step_power`` (B, R): t_p - t_{p-1}
-    where p continues its node's run (h_p); ``tail_power`` (B R,), flat:
-    t_end(c) - t_{p-1} where p is also of the node of its block's end
-    (E_c); ``end_power`` (R,): t_end(c) - t_end(c-1) + 1 where both ends
-    are of one node (P_c); ``largest_power``: their maximum. Flat indices:
-    ``tail_slot`` of [y_{p-1}, c] in (m, R); ``input_slot`` of
-    [j, y_{p-1}, c] in (B, m, R); ``destination`` of each (B, m, R) element
-    in (n_trials + 1, m), padding in the last row.
-    """
-
-    block: int
-    step_power: np.ndarray
-    tail_power: np.ndarray
-    end_power: np.ndarray
-    largest_power: int
-    tail_slot: np.ndarray
-    input_slot: np.ndarray
-    destination: np.ndarray
-
-
-def _power_table(r: float, largest: int) -> np.ndarray:
-    """Return [0, r**0, r**1, ..., r**(k-1), 0], k = min(largest, e0): r**(i-1) at index i.
-
-    Indexed with mode="clip" by i = 1 + exponent (0: no term) it gives every
-    power with exponent below ``largest`` and 0 beyond the table. For
-    0 < r < 1 and e >= e0 = ceil(1076 / -log2 r), r**e <= 2**-1076 < 2**-1075
-    rounds to exactly 0 (below half the smallest subnormal), so the table
-    stops there. Entries are libm's pow, except from e = s = floor(1022 / -log2 r)
-    on (results near or below the smallest normal, 2**-1022), where pow's
-    subnormal path is ~30x slower: there r**(s-1) * r**(e-s+1), a product of
-    two pow values, within one unit in the last place of pow.
-    """
-    log2r = -math.log2(r)
-    top = min(largest, math.ceil(1076 / log2r))
-    normal = min(top, max(1, int(1022 / log2r)))
-    table = np.zeros(top + 2)
-    np.power(r, np.arange(normal, dtype=float), out=table[1:normal + 1])
-    np.multiply(table[normal], table[2:top - normal + 2], out=table[normal + 1:top + 1])
-    return table
+@numba.njit(cache=True)
+def _leaky_pass(order, first, symbols, r, counts):  # pragma: no cover - compiled
+    z = np.zeros(counts.shape[1])
+    for j in range(order.shape[0]):
+        t = order[j]
+        if first[j] == j:
+            z[:] = 0.0
+        else:
+            h = r ** (t - order[j - 1] - 1)
+            g = r * h
+            for a in range(z.shape[0]):
+                z[a] *= g
+            z[symbols[j - 1]] += h
+        counts[t, :] = z
 
 
 def dirichlet_predict(counts: np.ndarray, alpha: float, out: np.ndarray | None = None) -> np.ndarray:
