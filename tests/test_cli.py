@@ -326,3 +326,23 @@ def test_rt_models_another_measure_column(tmp_path: Path, capsys) -> None:
     assert {"p3_amp_fits.csv", "p3_amp_compare.csv", "regressors.csv"} <= {p.name for p in out.iterdir()}
     err = capsys.readouterr().err.splitlines()
     assert not any("not part of the log format" in line and "p3_amp" in line for line in err)
+
+
+def test_a_task_deeper_than_the_learners_limit_is_refused_before_fitting(tmp_path: Path, capsys) -> None:
+    past = ['"a"'] * 13
+    lines = ['name = "deep-chain"', 'symbols = ["a", "b"]']
+    for d in range(1, 14):
+        lines += ["[[contexts]]", "past = [" + ", ".join(['"b"'] + ['"a"'] * (d - 1)) + "]",
+                  "next = { a = 0.6, b = 0.4 }"]
+    lines += ["[[contexts]]", "past = [" + ", ".join(past) + "]", "next = { a = 0.1, b = 0.9 }"]
+    task = tmp_path / "deep.toml"
+    task.write_text("\n".join(lines) + "\n")
+    assert main(["task", str(task)]) == 0
+    log = tmp_path / "log.csv"
+    log.write_text("participant,block,trial,stimulus,response\n"
+                   + "".join(f"p01,1,{t},a,b\n" for t in range(1, 40)))
+    capsys.readouterr()
+    assert main(["fit", str(log), "--task", str(task), "--out", str(tmp_path / "r")]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
+    assert len(err) == 1 and "at most 12 back" in err[0] and "Traceback" not in err[0]
+    assert not (tmp_path / "r").exists()
