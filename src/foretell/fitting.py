@@ -725,9 +725,11 @@ def _prediction_frame(model: _Model, rows: _Rows, best: Mapping[int, int]) -> pd
         model.forget(participant=i)
     sizes = [len(p.guess) for p in model.parts]
     frame = pd.concat([p.keys for p in model.parts], ignore_index=True)
-    frame.insert(0, "group", pd.Series([p.group for p in model.parts]).repeat(sizes).to_numpy())
-    frame.insert(0, "participant", pd.Series([p.participant for p in model.parts]).repeat(sizes).to_numpy())
-    frame["model"] = model.spec.model_id
+    # labels as categoricals: a study's per-trial table has millions of rows (peak memory)
+    frame.insert(0, "group", pd.Categorical(pd.Series([p.group for p in model.parts]).repeat(sizes)))
+    frame.insert(0, "participant", pd.Categorical(pd.Series([p.participant for p in model.parts])
+                                                  .repeat(sizes)))
+    frame["model"] = pd.Categorical([model.spec.model_id] * len(frame))
     frame[[f"p_{s}" for s in model.symbols]] = np.concatenate(probs)
     frame["guess_prob"] = np.concatenate(guess_prob)
     frame["scored"] = np.concatenate(scored)
@@ -858,6 +860,10 @@ def _assemble(done, specs: Sequence[ModelSpec], options: FitOptions, task: Task,
     blocks = pd.DataFrame([row for _, b, _ in done for row in b]).reindex(columns=block_columns)
     frames = [frame for _, _, p in done for frame in p if len(frame)]
     done.clear()  # the chunks' frames are released once concatenated (peak memory)
+    for column in ("participant", "group", "model"):  # one set of categories, so concat keeps them
+        categories = list(dict.fromkeys(c for f in frames for c in f[column].cat.categories))
+        for f in frames:
+            f[column] = f[column].cat.set_categories(categories)
     predictions = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
     del frames
     return FitTables(ordered(fits), ordered(blocks), ordered(predictions), excluded.reset_index(drop=True))
