@@ -95,8 +95,23 @@ def _add_fit_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
                    help="rows of trials.csv: each participant's winning model (best, the default), "
                         "every model (all: large), or no trials.csv (none)")
+    _add_force(p)
+
+
+def _add_force(p: argparse.ArgumentParser) -> None:
     p.add_argument("--force", action="store_true",
                    help="replace an output folder that foretell wrote before")
+
+
+def _add_sampling_options(p: argparse.ArgumentParser, *, min_chains: int, seed_help: str,
+                          jobs_help: str) -> None:
+    """Add --bayes/--no-bayes, --draws, --chains, --seed and --jobs (the Bayesian steps' options)."""
+    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
+                   help="fit the hierarchical Bayesian models (default: yes)")
+    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
+    p.add_argument("--chains", type=_count(min_chains), default=4, help="Markov chains per model")
+    p.add_argument("--seed", type=_count(0), default=0, help=seed_help)
+    p.add_argument("--jobs", type=_jobs, default=1, help=jobs_help)
 
 
 def _add_backend_options(p: argparse.ArgumentParser) -> None:
@@ -146,8 +161,7 @@ def build_parser() -> argparse.ArgumentParser:
                                               "events, report")
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
                    help="rows of fit/trials.csv (see foretell fit --help)")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_force(p)
 
     p = command("analyze", "the whole job: validate, fit and compare, reaction times, groups, "
                            "EEG events and the report",
@@ -165,16 +179,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--skip", default="", help="comma-separated steps to leave out: fit, rt, groups, "
                                               "events, report")
     p.add_argument("--recovery", metavar="DIR", help="a foretell recover output to show in the report")
-    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
-                   help="fit the hierarchical Bayesian models of RTs and groups (default: yes)")
-    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
-    p.add_argument("--chains", type=_count(2), default=4, help="Markov chains per Bayesian model")
-    p.add_argument("--seed", type=_count(0), default=0, help="seed of every random step (>= 0)")
-    p.add_argument("--jobs", type=_jobs, default=1, help="work in parallel (-1: all cores)")
+    _add_sampling_options(p, min_chains=2, seed_help="seed of every random step (>= 0)",
+                          jobs_help="work in parallel (-1: all cores)")
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
                    help="rows of fit/trials.csv (see foretell fit --help)")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_force(p)
 
     p = command("task", "describe a task file: contexts, probabilities, entropy rate",
                 "foretell task lantern-relay", "foretell task my-study/task.toml",
@@ -218,14 +227,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "stimulus's surprise (default: guess in guess designs, reveal in reaction ones)")
     p.add_argument("--log", action="store_true", dest="log_transform",
                    help="model the log of a measure other than rt (rt is always modelled on the log scale)")
-    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
-                   help="also fit the hierarchical Bayesian models (default: yes)")
-    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
-    p.add_argument("--chains", type=_count(1), default=4, help="Markov chains per model")
-    p.add_argument("--seed", type=_count(0), default=0, help="seed of the samplers (>= 0)")
-    p.add_argument("--jobs", type=_jobs, default=1, help="chains sampled in parallel")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_sampling_options(p, min_chains=1, seed_help="seed of the samplers (>= 0)",
+                          jobs_help="chains sampled in parallel")
+    _add_force(p)
 
     p = command("groups", "learning curves by group, and whether the groups learn differently",
                 "foretell groups study.csv --task lantern-relay --out groups/",
@@ -240,14 +244,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--fits", metavar="DIR", help="a foretell fit output to reuse (else the fits are run)")
     p.add_argument("--models", help="comma-separated model ids when the fits are run here")
     p.add_argument("--reference", help="the group the others are contrasted with (default: the first)")
-    p.add_argument("--bayes", action=argparse.BooleanOptionalAction, default=True,
-                   help="fit the hierarchical Bayesian models (default: yes)")
-    p.add_argument("--draws", type=_count(10), default=1000, help="posterior draws per chain")
-    p.add_argument("--chains", type=_count(2), default=4, help="Markov chains per model")
-    p.add_argument("--seed", type=_count(0), default=0, help="seed of the samplers and permutations (>= 0)")
-    p.add_argument("--jobs", type=_jobs, default=1, help="fits and chains in parallel (-1: all cores)")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_sampling_options(p, min_chains=2, seed_help="seed of the samplers and permutations (>= 0)",
+                          jobs_help="fits and chains in parallel (-1: all cores)")
+    _add_force(p)
 
     p = command("events", "write BIDS events files with per-trial learner quantities for the EEG analysis",
                 "foretell events study.csv --task lantern-relay --out events/ --fits results/",
@@ -260,8 +259,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--models", help="comma-separated model ids (default: the fitted models, or the "
                                     "task's set without leaky models when no --fits is given)")
     p.add_argument("--fits", metavar="DIR", help="a foretell fit output whose learner parameters are used")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_force(p)
 
     p = command("recover", "design check: can the models and parameters be told apart on this task?",
                 "foretell recover --task lantern-relay --participants 40 --trials 200,600 "
@@ -283,8 +281,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="folder for the tables and figures")
     p.add_argument("--seed", type=_count(0), default=0, help="seed of the simulations and fits (>= 0)")
     p.add_argument("--jobs", type=_jobs, default=1, help="fits in parallel (-1: all cores)")
-    p.add_argument("--force", action="store_true",
-                   help="replace an output folder that foretell wrote before")
+    _add_force(p)
     _add_backend_options(p)
     return parser
 
