@@ -136,7 +136,6 @@ def test_column_map_and_milliseconds(tmp_path):
 def test_seconds_that_look_like_milliseconds_are_warned(tmp_path):
     lines = ["participant,block,trial,stimulus,response,rt", "p01,1,1,a,b,520"]
     log = load_log(write(tmp_path, lines), TASK)
-    frame = log.frame
     assert any("rt_unit='ms'" in w for w in log.warnings)
 
 
@@ -505,7 +504,6 @@ def test_seconds_read_as_milliseconds_warns() -> None:
                           "stimulus": ["a", "b", "a"], "response": ["b", "a", "a"],
                           "rt": [0.41, 0.52, 0.38]})
     log = validate_log(frame, task, rt_unit="ms")
-    out = log.frame
     assert any("if the RTs are in seconds" in w for w in log.warnings)
 
 

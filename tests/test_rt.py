@@ -91,7 +91,8 @@ def test_newey_west_counts_lags_in_trials_across_left_out_trials():
 def test_huber_matches_statsmodels_rlm():
     X, y = _design(3, n=200)
     y[::17] += 4.0  # outliers
-    ref = sm.RLM(y, X, M=sm.robust.norms.HuberT()).fit(scale_est="mad", tol=1e-12)  # reference
+    # reference library: statsmodels RLM with Huber's T norm (Huber, 1964; Seabold & Perktold, 2010)
+    ref = sm.RLM(y, X, M=sm.robust.norms.HuberT()).fit(scale_est="mad", tol=1e-12)
     np.testing.assert_allclose(huber(X[None], y)[0], ref.params, rtol=1e-6)
 
 

@@ -329,7 +329,7 @@ def test_semantic_errors_name_the_line_of_their_table(tmp_path: Path) -> None:
         load_task(write(tmp_path, text))
     (problem,) = err.value.problems
     assert (problem.column, problem.line) == ("contexts[2].next", 11)
-    assert f"task.toml:11:" in str(problem)
+    assert "task.toml:11:" in str(problem)
     dup = GOOD_HEAD + "[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n" * 2
     with pytest.raises(TaskError) as err:
         load_task(write(tmp_path, dup))

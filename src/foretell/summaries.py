@@ -121,7 +121,7 @@ def _own_winners(winners: pd.DataFrame, group: str) -> str | None:
         return None
     tally = whole["best_model"].value_counts(sort=True)
     graded = int(whole["strength"].isin(_GRADED).sum())
-    return (f"  own best model per participant (whole session): "
+    return ("  own best model per participant (whole session): "
             + ", ".join(f"{m} {n}" for m, n in tally.items())
             + f"; at least positive evidence over the runner-up (Kass & Raftery, 1995) for "
             f"{graded} of {plural(len(whole), 'participant')}")
