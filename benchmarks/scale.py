@@ -4,8 +4,10 @@ Run by hand (PYTHONPATH=src python benchmarks/scale.py [--participants 200] [--t
 Prints, for each session length, the wall time of foretell.fitting.fit_participants with the default
 models (CV and per-block refits included), the time per 1,000 trials and the peak resident memory of
 the process tree; then the same participants on a distributed.LocalCluster with two workers against
-local joblib with two processes (the ratio, and whether the tables are identical). The load average
-is printed beside every figure: the ratios move with what else the machine runs.
+local joblib with two processes (the ratio, and whether the tables are identical), and the same for
+the per-participant path of foretell.rt.analyse_rt (regressors, leak profiles, OLS/Huber fits), with
+one local process as the plain reference. The load average is printed beside every figure: the
+ratios move with what else the machine runs.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ import pandas as pd
 from foretell.cluster import job_backend
 from foretell.fitting import fit_participants
 from foretell.logs import validate_log
+from foretell.rt import analyse_rt
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 
@@ -68,16 +71,30 @@ def main() -> None:
     start = time.perf_counter()
     local = fit_participants(log, task, seed=0, n_jobs=2, progress=False)
     local_s = time.perf_counter() - start
+    start = time.perf_counter()
+    serial_rt = analyse_rt(log, task, bayes=False)
+    serial_rt_s = time.perf_counter() - start
+    start = time.perf_counter()
+    local_rt = analyse_rt(log, task, bayes=False, n_jobs=2)
+    local_rt_s = time.perf_counter() - start
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster:
         start = time.perf_counter()
         with job_backend("dask", cluster.scheduler_address):
-            remote = fit_participants(log, task, seed=0, n_jobs=2, progress=False)
+            remote = fit_participants(log, task, seed=0, progress=False)
         cluster_s = time.perf_counter() - start
-    same = all(getattr(local, name).equals(getattr(remote, name)) for name in ("fits", "blocks"))
-    print(f"\n{args.participants} participants x {args.cluster_trials} trials: local joblib (2 processes) "
-          f"{local_s:.1f} s, LocalCluster (2 workers) {cluster_s:.1f} s, ratio {cluster_s / local_s:.2f}; "
-          f"tables identical: {same}; load {os.getloadavg()[0]:.1f}")
-
+        start = time.perf_counter()
+        with job_backend("dask", cluster.scheduler_address):
+            remote_rt = analyse_rt(log, task, bayes=False)
+        cluster_rt_s = time.perf_counter() - start
+    same = all(getattr(local, name).equals(getattr(remote, name)) for name in ("fits", "blocks", "predictions"))
+    same_rt = all(serial_rt.tables()[name].equals(other.tables()[name])
+                  for other in (local_rt, remote_rt) for name in serial_rt.tables())
+    print(f"\n{args.participants} participants x {args.cluster_trials} trials, load {os.getloadavg()[0]:.1f}")
+    print(f"fit: local joblib (2 processes) {local_s:.1f} s, LocalCluster (2 workers) {cluster_s:.1f} s, "
+          f"ratio {cluster_s / local_s:.2f}; tables identical: {same}")
+    print(f"rt per-participant path: one process {serial_rt_s:.1f} s, local joblib (2 processes) "
+          f"{local_rt_s:.1f} s (ratio {local_rt_s / serial_rt_s:.2f}), LocalCluster (2 workers) "
+          f"{cluster_rt_s:.1f} s (ratio {cluster_rt_s / serial_rt_s:.2f}); tables identical: {same_rt}")
 
 if __name__ == "__main__":
     pd.set_option("display.width", 120)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -11,7 +13,7 @@ from foretell.errors import UsageError
 from foretell.learners import Counting, TreeMixture
 from foretell.logs import validate_log
 from foretell.models import parse_model
-from foretell.regressors import REGRESSORS, learner_values, regressors
+from foretell.regressors import REGRESSORS, learner_values, regressors, stack_tables
 from foretell.simulate import simulate_participants
 from foretell.tasks import Task
 
@@ -104,3 +106,17 @@ def test_reaction_design_has_no_guess_probability():
     table = regressors(validate_log(frame, bare), bare, ["count-1"])
     assert table["guess_prob"].isna().all()
     assert (table["prev_correct"].dropna() == 1.0).all()
+
+
+def test_batches_of_participants_stack_to_the_whole_table(tide):
+    frame, _ = simulate_participants(tide, 3, 2, models=["count-1"], seed=4, block_length=30)
+    log = validate_log(frame, tide)
+    models = ["count-0", "count-2", "mix-3"]
+    whole = regressors(log, tide, models, fixed={"leak": 0.1})
+    cut = int(np.flatnonzero(log.frame["participant"].to_numpy() == "p02")[0])
+    parts = [regressors(replace(log, frame=log.frame.iloc[rows].reset_index(drop=True)), tide, models,
+                        fixed={"leak": 0.1})
+             for rows in (slice(0, cut), slice(cut, None))]
+    stacked = stack_tables(parts)
+    pd.testing.assert_frame_equal(stacked, whole)  # values, dtypes and category order
+    assert list(stacked["context"].cat.categories) == list(whole["context"].cat.categories)

@@ -116,8 +116,9 @@ def _add_sampling_options(p: argparse.ArgumentParser, *, min_chains: int, seed_h
 
 def _add_backend_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--backend", choices=("local", "dask"), default="local",
-                   help="where participants are fitted: this machine (local, the default) or a "
-                        "running Dask cluster (dask; needs pip install 'foretell[dask]')")
+                   help="where the per-participant jobs run: this machine (local, the default) or "
+                        "a running Dask cluster (dask: all of its workers, whatever --jobs says; "
+                        "needs pip install 'foretell[dask]'); the tables are the same")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="the Dask scheduler's address with --backend dask, e.g. tcp://10.0.0.5:8786")
 
@@ -183,6 +184,7 @@ def build_parser() -> argparse.ArgumentParser:
                           jobs_help="work in parallel (-1: all cores)")
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
                    help="rows of fit/trials.csv (see foretell fit --help)")
+    _add_backend_options(p)
     _add_force(p)
 
     p = command("task", "describe a task file: contexts, probabilities, entropy rate",
@@ -228,7 +230,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log", action="store_true", dest="log_transform",
                    help="model the log of a measure other than rt (rt is always modelled on the log scale)")
     _add_sampling_options(p, min_chains=1, seed_help="seed of the samplers (>= 0)",
-                          jobs_help="chains sampled in parallel")
+                          jobs_help="participants computed and chains sampled in parallel")
+    _add_backend_options(p)
     _add_force(p)
 
     p = command("groups", "learning curves by group, and whether the groups learn differently",
@@ -424,6 +427,7 @@ def _cmd_recover(args: argparse.Namespace) -> int:
 
 
 def _cmd_rt(args: argparse.Namespace) -> int:
+    from .cluster import job_backend
     from .outputs import check_output_dir, netcdf_bytes, provenance, write_outputs
     from .rt import analyse_rt
 
@@ -434,10 +438,12 @@ def _cmd_rt(args: argparse.Namespace) -> int:
     check_output_dir(args.out, inputs=inputs, force=args.force)
     fits = _read_fits(fits_path, "--fits") if fits_path else None
     started = time.perf_counter()
-    result = analyse_rt(log, task, _csv_list(args.models), measure=args.measure, locked=args.locked,
-                        fits=fits, bayes=args.bayes, draws=args.draws, chains=args.chains,
-                        seed=args.seed, n_jobs=args.jobs, progress=sys.stderr.isatty(),
-                        log_transform=True if args.measure == "rt" else args.log_transform)
+    with job_backend(args.backend, args.scheduler):
+        result = analyse_rt(log, task, _csv_list(args.models), measure=args.measure,
+                            locked=args.locked, fits=fits, bayes=args.bayes, draws=args.draws,
+                            chains=args.chains, seed=args.seed, n_jobs=args.jobs,
+                            progress=sys.stderr.isatty(),
+                            log_transform=True if args.measure == "rt" else args.log_transform)
     for line in result.notes:
         _say(f"note: {line}")
     posteriors = {f"posterior_{model}.nc": netcdf_bytes(idata) for model, idata in result.posteriors.items()}
@@ -542,16 +548,18 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_analyze(args: argparse.Namespace) -> int:
+    from .cluster import job_backend
     from .pipeline import analyze
 
     task, log = _load(args)
     inputs = [args.log, *_task_inputs(task)]
-    result = analyze(log, task, args.out, models=_csv_list(args.models),
-                     rt_models=_csv_list(args.rt_models), free=_csv_list(args.free) or (),
-                     skip=_csv_list(args.skip) or (), recovery=args.recovery, seed=args.seed,
-                     n_jobs=args.jobs, bayes=args.bayes, draws=args.draws, chains=args.chains, tune=args.draws,
-                     force=args.force, inputs=inputs, trials=args.trials,
-                     manifest=_run_record(args, inputs), progress=sys.stderr.isatty())
+    with job_backend(args.backend, args.scheduler):
+        result = analyze(log, task, args.out, models=_csv_list(args.models),
+                         rt_models=_csv_list(args.rt_models), free=_csv_list(args.free) or (),
+                         skip=_csv_list(args.skip) or (), recovery=args.recovery, seed=args.seed,
+                         n_jobs=args.jobs, bayes=args.bayes, draws=args.draws, chains=args.chains,
+                         tune=args.draws, force=args.force, inputs=inputs, trials=args.trials,
+                         manifest=_run_record(args, inputs), progress=sys.stderr.isatty())
     _report_run(result, args.out)
     return 0
 

@@ -54,12 +54,12 @@ from itertools import combinations
 
 import numpy as np
 import pandas as pd
-from joblib import Parallel, delayed, effective_n_jobs
-from joblib.externals.loky import get_reusable_executor
+from joblib import Parallel, delayed
 from scipy.optimize import minimize
 from tqdm import tqdm
 
 from foretell.choice import choice_terms
+from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import LogError, UsageError
 from foretell.logs import ValidatedLog, unscorable
 from foretell.models import ModelSpec, model_specs
@@ -526,8 +526,8 @@ def _solve_rows(model: _Model, rows: _Rows, select: np.ndarray, starts: Sequence
 
 # -- one model for a batch of participants ------------------------------------------------------
 def _fit_model(j: int, spec: ModelSpec, parts: Sequence[_Participant], options: FitOptions,
-               symbols: Sequence[str]) -> tuple[list[dict], list[dict], pd.DataFrame]:
-    """Return the fit rows, block rows and the prediction frame of model j for every participant."""
+               symbols: Sequence[str]) -> tuple[list[dict], list[dict], np.ndarray]:
+    """Return the fit rows, block rows and the prediction values of model j for every participant."""
     model = _Model(spec, dict(options.fixed), parts, symbols)
     space, n_starts = model.space, options.n_starts
     part, kind, unit, starts = [], [], [], []
@@ -657,8 +657,8 @@ def _moved(vector: np.ndarray, i: int, value: float) -> np.ndarray:
 
 
 def _tables(model: _Model, rows: _Rows, best: Mapping[int, int],
-            options: FitOptions) -> tuple[list[dict], list[dict], pd.DataFrame]:
-    """Return the fit rows, block rows and the prediction frame of one model from its solved rows."""
+            options: FitOptions) -> tuple[list[dict], list[dict], np.ndarray]:
+    """Return the fit rows, block rows and the prediction values of one model from its solved rows."""
     spec, k = model.spec, len(model.names)
     held_pairs, session_pairs = [], []
     for q in range(len(rows.part)):
@@ -704,48 +704,97 @@ def _tables(model: _Model, rows: _Rows, best: Mapping[int, int],
                    for q_ in _PARAM_ORDER},
                 "converged": bool(rows.converged[q]), "cv_converged": fold_ok.get(u),
                 "message": rows.message[q]})
-    return fit_rows, block_rows, _prediction_frame(model, rows, best)
+    return fit_rows, block_rows, _prediction_values(model, rows, best)
 
 
-def _prediction_frame(model: _Model, rows: _Rows, best: Mapping[int, int]) -> pd.DataFrame:
-    """Return every participant's per-trial predictions and guess probabilities at the whole-session estimate."""
-    probs, guess_prob, scored = [], [], []
+def _prediction_values(model: _Model, rows: _Rows, best: Mapping[int, int]) -> np.ndarray:
+    """Return (trials of the batch, m + 1): each trial's prediction and guess probability (NaN when missed).
+
+    At every participant's whole-session estimate; participants one after another, in batch order.
+    """
+    out = np.empty((sum(len(p.guess) for p in model.parts), len(model.symbols) + 1))
+    at = 0
     for i, p in enumerate(model.parts):
         r = best[i]
         values = _values(model, rows, r)
         log_pred = model.log_pred(i, rows.theta[r])
         made = np.flatnonzero(p.guess >= 0)
-        prob = np.full(len(p.guess), math.nan)
-        prob[made] = np.exp(choice_terms(log_pred[made], p.guess[made], values["inv_temp"], values["lapse"])[0])
-        mask = np.zeros(len(p.guess), dtype=bool)
-        mask[p.scored] = True
-        probs.append(np.exp(log_pred))
-        guess_prob.append(prob)
-        scored.append(mask)
+        here = out[at: at + len(p.guess)]
+        here[:, :-1] = np.exp(log_pred)
+        here[:, -1] = math.nan
+        here[made, -1] = np.exp(choice_terms(log_pred[made], p.guess[made], values["inv_temp"],
+                                             values["lapse"])[0])
+        at += len(p.guess)
         model.forget(participant=i)
-    sizes = [len(p.guess) for p in model.parts]
-    frame = pd.concat([p.keys for p in model.parts], ignore_index=True)
-    # labels as categoricals: a study's per-trial table has millions of rows (peak memory)
-    frame.insert(0, "group", pd.Categorical(pd.Series([p.group for p in model.parts]).repeat(sizes)))
-    frame.insert(0, "participant", pd.Categorical(pd.Series([p.participant for p in model.parts])
-                                                  .repeat(sizes)))
-    frame["model"] = pd.Categorical([model.spec.model_id] * len(frame))
-    frame[[f"p_{s}" for s in model.symbols]] = np.concatenate(probs)
-    frame["guess_prob"] = np.concatenate(guess_prob)
-    frame["scored"] = np.concatenate(scored)
-    return frame
+    return out
 
 
 def _fit_chunk(parts: Sequence[_Participant], specs: Sequence[ModelSpec], options: FitOptions,
-               symbols: Sequence[str]) -> tuple[list[dict], list[dict], list[pd.DataFrame]]:
-    """Return every model's fit rows, block rows and prediction frame for a batch of participants."""
-    fits, blocks, frames = [], [], []
+               symbols: Sequence[str]) -> tuple[list[dict], list[dict], list[np.ndarray]]:
+    """Return every model's fit rows, block rows and prediction values for a batch of participants."""
+    fits, blocks, values = [], [], []
     for j, spec in enumerate(specs):
-        f, b, p = _fit_model(j, spec, parts, options, symbols)
+        f, b, v = _fit_model(j, spec, parts, options, symbols)
         fits += f
         blocks += b
-        frames.append(p)
-    return fits, blocks, frames
+        values.append(v)
+    return fits, blocks, values
+
+
+class _Predictions:
+    """The per-trial predictions table, filled batch by batch into arrays of its final size.
+
+    Rows: participant, then model, then the participant's trials (the order of
+    the other tables). Holding only the final arrays, and each batch's values
+    until they are copied in, keeps the peak memory of a large study near the
+    size of the table itself.
+    """
+
+    def __init__(self, parts: Sequence[_Participant], specs: Sequence[ModelSpec], symbols: Sequence[str]):
+        self.parts, self.specs, self.symbols = parts, specs, tuple(symbols)
+        self.sizes = np.array([len(p.guess) for p in parts], dtype=np.int64)
+        self.first = np.r_[0, np.cumsum(self.sizes * len(specs))[:-1]]  # first row of each participant
+        self.values = np.empty((int(self.sizes.sum()) * len(specs), len(self.symbols) + 1))
+
+    def add(self, start: int, values: Sequence[np.ndarray]) -> None:
+        """Copy in a batch's values (one array per model) whose participants begin at ``parts[start]``."""
+        at = 0
+        i = start
+        while at < len(values[0]):
+            n = int(self.sizes[i])
+            for j, v in enumerate(values):
+                row = self.first[i] + j * n
+                self.values[row: row + n] = v[at: at + n]
+            at += n
+            i += 1
+
+    def frame(self) -> pd.DataFrame:
+        """Return the table (see :class:`FitTables`); it shares the value arrays (no copy)."""
+        n_models = len(self.specs)
+        reps = self.sizes * n_models
+
+        def per_participant(values: Sequence[object]) -> pd.Categorical:  # labels as categoricals
+            labels = pd.Categorical(values)
+            return pd.Categorical.from_codes(np.repeat(labels.codes, reps), labels.categories)
+
+        def tiled(column: str) -> np.ndarray:
+            return np.concatenate([np.tile(p.keys[column].to_numpy(), n_models) for p in self.parts])
+
+        def scored(p: _Participant) -> np.ndarray:
+            mask = np.zeros(len(p.guess), dtype=bool)
+            mask[p.scored] = True
+            return np.tile(mask, n_models)
+
+        columns = {"participant": per_participant([p.participant for p in self.parts]),
+                   "group": per_participant([p.group for p in self.parts]),
+                   **{c: tiled(c) for c in ("session", "block", "trial")},
+                   "model": pd.Categorical.from_codes(
+                       np.concatenate([np.repeat(np.arange(n_models), n) for n in self.sizes]),
+                       [s.model_id for s in self.specs]),
+                   **{f"p_{s}": self.values[:, k] for k, s in enumerate(self.symbols)},
+                   "guess_prob": self.values[:, -1],
+                   "scored": np.concatenate([scored(p) for p in self.parts])}
+        return pd.DataFrame(columns, copy=False)
 
 
 # -- public entry points ---------------------------------------------------------------------
@@ -799,40 +848,28 @@ def fit_participants(log: ValidatedLog, task: Task, models: Sequence[str | Model
     if not parts:
         raise LogError(f"no participant has a scored trial (warm-up {warm} trials per session, "
                        "missed guesses unscored): nothing to fit", path=log.source)
-    chunks = _chunks(parts, effective_n_jobs(n_jobs))
+    workers = job_count(n_jobs)
+    chunks = [parts[a:b] for a, b in batches([len(p.guess) for p in parts], workers, _CHUNK_TRIALS)]
     show = sys.stderr.isatty() if progress is None else bool(progress)
     jobs = (delayed(_fit_chunk)(chunk, specs, options, task.symbols) for chunk in chunks)
-    done = []
-    try:
-        with Parallel(n_jobs=n_jobs, return_as="generator") as parallel, \
+    fit_rows, block_rows, predictions = [], [], _Predictions(parts, specs, task.symbols)
+    with workers_stopped(n_jobs):
+        with Parallel(n_jobs=workers, return_as="generator") as parallel, \
                 tqdm(total=len(parts), disable=not show, unit="participant", desc="fitting",
                      file=sys.stderr) as bar:
-            for chunk, result in zip(chunks, parallel(jobs)):
-                done.append(result)
+            start = 0
+            for chunk, (f, b, values) in zip(chunks, parallel(jobs)):
+                fit_rows += f
+                block_rows += b
+                predictions.add(start, values)  # copied in as it comes (peak memory)
+                start += len(chunk)
                 bar.update(len(chunk))
-    except BaseException:  # KeyboardInterrupt (SIGTERM in the CLI) included: no worker outlives us
-        if int(n_jobs) != 1:
-            get_reusable_executor().shutdown(wait=False, kill_workers=True)
-        raise
-    return _assemble(done, specs, options, task, excluded)
+    return _assemble(fit_rows, block_rows, predictions.frame(), specs, options, excluded)
 
 
-def _chunks(parts: Sequence[_Participant], workers: int) -> list[list[_Participant]]:
-    """Return participants in consecutive batches: one per worker, more when a batch would exceed _CHUNK_TRIALS.
-
-    Every fit row is solved independently of the others in its batch, so
-    the split changes the speed only, never the tables.
-    """
-    sizes = np.array([len(p.guess) for p in parts])
-    n_chunks = min(len(parts), max(math.ceil(sizes.sum() / _CHUNK_TRIALS), int(workers)))
-    edges = np.searchsorted(np.cumsum(sizes), np.linspace(0, sizes.sum(), n_chunks + 1)[1:-1], side="right")
-    bounds = np.unique(np.r_[0, edges, len(parts)])
-    return [list(parts[a:b]) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
-
-
-def _assemble(done, specs: Sequence[ModelSpec], options: FitOptions, task: Task,
-              excluded: list[dict]) -> FitTables:
-    """Return the FitTables of the chunks' results, ordered participant, model (, block or trial)."""
+def _assemble(fit_rows: list[dict], block_rows: list[dict], predictions: pd.DataFrame,
+              specs: Sequence[ModelSpec], options: FitOptions, excluded: pd.DataFrame) -> FitTables:
+    """Return the FitTables of the batches' rows, ordered participant, model (, block)."""
     fixed = dict(options.fixed)
     used = [p for p in LEARNER_PARAMS if p in fixed or any(p in s.free for s in specs)]
     free_sets = [tuple(p for p in s.free if p not in fixed) for s in specs]
@@ -847,23 +884,13 @@ def _assemble(done, specs: Sequence[ModelSpec], options: FitOptions, task: Task,
                      + ["converged", "cv_converged", "message"])
     order = {s.model_id: j for j, s in enumerate(specs)}
 
-    def ordered(frame: pd.DataFrame) -> pd.DataFrame:  # participant, then model; stable within
+    def ordered(rows: list[dict], columns: list[str]) -> pd.DataFrame:  # participant, then model
+        frame = pd.DataFrame(rows).reindex(columns=columns)
         if frame.empty:
             return frame
         first = {pid: i for i, pid in enumerate(pd.unique(frame["participant"]))}
         rank = np.lexsort([frame["model"].map(order).to_numpy(), frame["participant"].map(first).to_numpy()])
-        if np.array_equal(rank, np.arange(len(rank))):  # already in order: no copy of a large table
-            return frame
         return frame.iloc[rank].reset_index(drop=True)
 
-    fits = pd.DataFrame([row for f, _, _ in done for row in f]).reindex(columns=fit_columns)
-    blocks = pd.DataFrame([row for _, b, _ in done for row in b]).reindex(columns=block_columns)
-    frames = [frame for _, _, p in done for frame in p if len(frame)]
-    done.clear()  # the chunks' frames are released once concatenated (peak memory)
-    for column in ("participant", "group", "model"):  # one set of categories, so concat keeps them
-        categories = list(dict.fromkeys(c for f in frames for c in f[column].cat.categories))
-        for f in frames:
-            f[column] = f[column].cat.set_categories(categories)
-    predictions = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
-    del frames
-    return FitTables(ordered(fits), ordered(blocks), ordered(predictions), excluded.reset_index(drop=True))
+    return FitTables(ordered(fit_rows, fit_columns), ordered(block_rows, block_columns), predictions,
+                     excluded.reset_index(drop=True))

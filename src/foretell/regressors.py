@@ -15,6 +15,7 @@ from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
+from pandas.api.types import union_categoricals
 
 from foretell.errors import UsageError
 from foretell.labels import context_label
@@ -138,6 +139,21 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
                                       for x, _ in sessions])
             parts.append(_columns(spec, cols, context, values, source, len(rows)))
     return _table(frame, parts, catalog)
+
+
+def stack_tables(tables: Sequence[pd.DataFrame]) -> pd.DataFrame:
+    """Return the regressor tables of consecutive batches of participants as one table.
+
+    The same table, categories included, as :func:`regressors` gives on
+    the batches' logs together: contexts in order of first appearance,
+    ``params_from`` sorted.
+    """
+    if len(tables) == 1:
+        return tables[0]
+    out = pd.concat(tables, ignore_index=True)
+    for column, sort in (("model", False), ("context", False), ("params_from", True)):
+        out[column] = union_categoricals([t[column] for t in tables], sort_categories=sort)
+    return out
 
 
 def session_columns(learner: object, x: np.ndarray, response: np.ndarray, n_symbols: int,

@@ -13,19 +13,21 @@ from __future__ import annotations
 import math
 import sys
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
+from joblib import Parallel, delayed
 from scipy.stats import norm
 
 from foretell.bayes import (PARAMETERISATIONS, Diagnostics, Gate, choose_by_strength, compare_loo,
                             diagnose, sample)
+from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import UsageError
 from foretell.labels import block_label
 from foretell.logs import ValidatedLog
 from foretell.models import ModelSpec, model_specs
-from foretell.regressors import IN_BITS, REGRESSORS, design, regressors as trial_regressors
+from foretell.regressors import IN_BITS, REGRESSORS, design, regressors as trial_regressors, stack_tables
 from foretell.tasks import Task
 
 BLOCK_START_DROP = 2
@@ -40,6 +42,7 @@ KASS_RAFTERY_VERY_STRONG = 10.0
 """A BIC margin (2 ln Bayes factor) above 10 is "very strong" evidence (Kass & Raftery, 1995)."""
 LOCKS = ("guess", "reveal")
 _IRLS_MAX_ITER = 50
+_BATCH_TRIALS = 200_000  # most trials per batch of participants on the per-participant path
 _IRLS_TOL = 1e-10
 
 
@@ -265,7 +268,10 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     interval (normal quantiles); ``bic`` = k ln n - 2 ln L, k = coefficients +
     residual variance + a leak chosen on this measure. Learner parameters:
     see :func:`foretell.regressors.regressors` (``fits``, ``fixed``, else the
-    leak that maximises this OLS likelihood on a grid).
+    leak that maximises this OLS likelihood on a grid). Participants are
+    computed on their own, in batches on ``n_jobs`` joblib workers (or on a
+    Dask cluster inside :func:`foretell.cluster.job_backend`); the tables
+    do not depend on where they ran.
 
     With ``bayes``, one hierarchical model per learner model (see
     :func:`hierarchical_model`), sampled with ``chains`` x ``draws`` after
@@ -282,23 +288,19 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     chosen = _measure(log, task, specs, measure, locked, regressors, log_transform, block_start)
     frame = log.frame
     spans = _participant_spans(frame)
-
-    def score(pid: str, candidates: Sequence[Mapping[str, np.ndarray]]) -> np.ndarray:
-        X, y, _, _ = _design(chosen, spans[pid], candidates)
-        if len(y) <= X.shape[2]:
-            return np.full(len(candidates), -np.inf)
-        return ols(X, y, lags=0).loglik
-
-    table = trial_regressors(log, task, specs, fixed=fixed, fits=fits, score=score)
+    edges = [r.start for r in spans.values()] + [len(frame)]
+    workers = job_count(n_jobs)
+    ranges = batches(np.diff(edges), workers, _BATCH_TRIALS)
+    jobs = (delayed(_participant_path)(_rows_of(log, chosen, edges[a], edges[b]), task, specs, fixed,
+                                       fits) for a, b in ranges)
+    with workers_stopped(n_jobs):
+        done = Parallel(n_jobs=workers)(jobs)
+    table = stack_tables([t for t, _, _ in done])
+    fit_rows = [row for _, f, _ in done for row in f]
+    block_rows = [row for _, _, b in done for row in b]
+    del done
     columns = {c: table[c].to_numpy() for c in (*chosen.columns, "leak", "alpha", "params_from")}
     notes = _drop_notes(chosen, frame)
-    fit_rows, block_rows = [], []
-    for pid, rows in spans.items():
-        cols, info = _model_columns(chosen, columns, rows, len(specs))
-        part = frame.iloc[rows]
-        fit_rows += _participant_fits(chosen, part, rows, cols, specs, info)
-        profiled = np.array([i["params_from"] == "profile" for i in info])
-        block_rows += _participant_blocks(chosen, part, rows, cols, specs, profiled)
     fits_table = pd.DataFrame(fit_rows)
     blocks_table = _rank_blocks(pd.DataFrame(block_rows), chosen)
     compare, more = _compare_bic(fits_table)
@@ -317,6 +319,45 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     name = chosen.name if isinstance(measure, str) else "measure"
     return RTResult(name, fits_table, compare, blocks_table, diagnostics, table, posteriors,
                     tuple(notes))
+
+
+def _rows_of(log: ValidatedLog, chosen: _Measure, start: int, stop: int
+             ) -> tuple[ValidatedLog, _Measure]:
+    """Return the log and the measure restricted to rows start:stop (whole participants)."""
+    rows = slice(start, stop)
+    part = replace(log, frame=log.frame.iloc[rows].reset_index(drop=True))
+    return part, replace(chosen, values=chosen.values[rows], reason=chosen.reason[rows],
+                         block_order=chosen.block_order[rows])
+
+
+def _participant_path(batch: tuple[ValidatedLog, _Measure], task: Task, specs: Sequence[ModelSpec],
+                      fixed: Mapping[str, float] | None, fits: pd.DataFrame | None
+                      ) -> tuple[pd.DataFrame, list[dict[str, object]], list[dict[str, object]]]:
+    """Return (regressor table, fits rows, blocks rows) of a batch of whole participants.
+
+    Every participant is computed on their own, so batches (and where they
+    run: joblib's processes or a Dask cluster) never change a result.
+    """
+    log, chosen = batch
+    frame = log.frame
+    spans = _participant_spans(frame)
+
+    def score(pid: str, candidates: Sequence[Mapping[str, np.ndarray]]) -> np.ndarray:
+        X, y, _, _ = _design(chosen, spans[pid], candidates)
+        if len(y) <= X.shape[2]:
+            return np.full(len(candidates), -np.inf)
+        return ols(X, y, lags=0).loglik
+
+    table = trial_regressors(log, task, specs, fixed=fixed, fits=fits, score=score)
+    columns = {c: table[c].to_numpy() for c in (*chosen.columns, "leak", "alpha", "params_from")}
+    fit_rows, block_rows = [], []
+    for rows in spans.values():
+        cols, info = _model_columns(chosen, columns, rows, len(specs))
+        part = frame.iloc[rows]
+        fit_rows += _participant_fits(chosen, part, rows, cols, specs, info)
+        profiled = np.array([i["params_from"] == "profile" for i in info])
+        block_rows += _participant_blocks(chosen, part, rows, cols, specs, profiled)
+    return table, fit_rows, block_rows
 
 
 # -- choosing the measure and the trials ----------------------------------------------------------
