@@ -104,6 +104,22 @@ def test_rt_command_on_a_cluster_writes_the_local_tables(tmp_path: Path) -> None
         assert (tmp_path / "here" / name).read_bytes() == (tmp_path / "there" / name).read_bytes()
 
 
+def test_analyze_on_a_cluster_writes_the_local_fits(tmp_path: Path) -> None:
+    task = load_task("tide-gauge")
+    frame, _ = simulate_participants(task, 3, 2, models=["count-1"], seed=7, block_length=40)
+    log = tmp_path / "study.csv"
+    frame.assign(rt=frame["rt"].round(3)).to_csv(log, index=False)
+    common = ["analyze", str(log), "--task", "tide-gauge", "--models", "count-0,count-1",
+              "--skip", "rt,groups,events,report"]
+    assert main([*common, "--out", str(tmp_path / "here")]) == 0
+    with _cluster() as cluster:
+        assert main([*common, "--out", str(tmp_path / "there"), "--backend", "dask",
+                     "--scheduler", cluster.scheduler_address]) == 0
+        assert _ran_there(cluster, "_fit_chunk")
+    for name in ("fits.csv", "blocks.csv", "trials.csv", "winners.csv"):
+        assert (tmp_path / "here" / "fit" / name).read_bytes() == (tmp_path / "there" / "fit" / name).read_bytes()
+
+
 @pytest.mark.parametrize("command", ["fit", "rt", "analyze"])
 def test_backend_options_are_checked_by_every_command_that_takes_them(
         command: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
