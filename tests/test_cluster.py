@@ -88,36 +88,26 @@ def test_bad_backend_settings_are_usage_errors(backend, scheduler, message) -> N
             pass
 
 
-def test_rt_command_on_a_cluster_writes_the_local_tables(tmp_path: Path) -> None:
-    task = load_task("tide-gauge")
-    frame, _ = simulate_participants(task, 4, 2, models=["count-1"], seed=6, block_length=40)
+@pytest.mark.parametrize("args, function, outputs", [
+    (["rt", "--models", "count-0,count-1,count-1-leak", "--no-bayes"], "_participant_path",
+     ["rt_fits.csv", "rt_compare.csv", "rt_blocks.csv", "regressors.csv"]),
+    (["analyze", "--models", "count-0,count-1", "--skip", "rt,groups,events,report"], "_fit_chunk",
+     ["fit/fits.csv", "fit/blocks.csv", "fit/trials.csv", "fit/winners.csv"]),
+])
+def test_commands_on_a_cluster_write_the_local_tables(args: list[str], function: str,
+                                                      outputs: list[str], tmp_path: Path) -> None:
+    frame, _ = simulate_participants(load_task("tide-gauge"), 4, 2, models=["count-1"], seed=6,
+                                     block_length=40)
     log = tmp_path / "study.csv"
     frame.assign(rt=frame["rt"].round(3)).to_csv(log, index=False)
-    common = ["rt", str(log), "--task", "tide-gauge", "--models", "count-0,count-1,count-1-leak",
-              "--no-bayes", "--jobs", "2"]
-    assert main([*common, "--out", str(tmp_path / "here")]) == 0
+    common = [args[0], str(log), "--task", "tide-gauge", *args[1:]]
+    assert main([*common, "--jobs", "2", "--out", str(tmp_path / "here")]) == 0
     with _cluster() as cluster:  # --jobs 1: on a cluster every worker is used anyway
-        assert main([*common[:-1], "1", "--out", str(tmp_path / "there"), "--backend", "dask",
+        assert main([*common, "--jobs", "1", "--out", str(tmp_path / "there"), "--backend", "dask",
                      "--scheduler", cluster.scheduler_address]) == 0
-        assert _ran_there(cluster, "_participant_path")
-    for name in ("rt_fits.csv", "rt_compare.csv", "rt_blocks.csv", "regressors.csv"):
+        assert _ran_there(cluster, function)
+    for name in outputs:
         assert (tmp_path / "here" / name).read_bytes() == (tmp_path / "there" / name).read_bytes()
-
-
-def test_analyze_on_a_cluster_writes_the_local_fits(tmp_path: Path) -> None:
-    task = load_task("tide-gauge")
-    frame, _ = simulate_participants(task, 3, 2, models=["count-1"], seed=7, block_length=40)
-    log = tmp_path / "study.csv"
-    frame.assign(rt=frame["rt"].round(3)).to_csv(log, index=False)
-    common = ["analyze", str(log), "--task", "tide-gauge", "--models", "count-0,count-1",
-              "--skip", "rt,groups,events,report"]
-    assert main([*common, "--out", str(tmp_path / "here")]) == 0
-    with _cluster() as cluster:
-        assert main([*common, "--out", str(tmp_path / "there"), "--backend", "dask",
-                     "--scheduler", cluster.scheduler_address]) == 0
-        assert _ran_there(cluster, "_fit_chunk")
-    for name in ("fits.csv", "blocks.csv", "trials.csv", "winners.csv"):
-        assert (tmp_path / "here" / "fit" / name).read_bytes() == (tmp_path / "there" / "fit" / name).read_bytes()
 
 
 @pytest.mark.parametrize("command", ["fit", "rt", "analyze"])
