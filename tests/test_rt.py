@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from dataclasses import replace
 
 import numpy as np
 import pandas as pd
@@ -11,12 +12,12 @@ import pytest
 import statsmodels.api as sm
 from scipy.stats import linregress, norm
 
-from foretell.bayes import Gate, choose_by_strength, diagnose
+from foretell.bayes import Gate, choose_by_strength, diagnose, exact_units, pareto_k, psis_loo
 from foretell.errors import UsageError
 from foretell.learners import Counting
 from foretell.logs import validate_log
-from foretell.rt import (analyse_rt, gaussian_unit_loglik, huber, newey_west_lags, ols,
-                         unit_statistics)
+from foretell.rt import (UnitStats, _Pooled, analyse_rt, gaussian_unit_loglik, huber, leave_out,
+                         newey_west_lags, ols, unit_statistics)
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.tasks import Task
 
@@ -271,7 +272,8 @@ def test_hierarchical_model_passes_the_gate(lantern, shape):
 def test_hierarchical_run_reports_its_gate(tide):
     frame, _ = simulate_participants(tide, 3, 2, models=["count-1"], seed=4, block_length=30)
     log = validate_log(frame, tide)
-    result = analyse_rt(log, tide, ["count-0", "count-1"], draws=50, tune=50, chains=2, seed=1)
+    result = analyse_rt(log, tide, ["count-0", "count-1"], draws=50, tune=50, chains=2, seed=1,
+                        refits=0)  # exact refits: test_units_with_a_high_pareto_k_are_refitted
     diag = result.diagnostics
     assert list(diag["model"]) == ["count-0", "count-1"]
     assert (diag["slope_form"] == "non-centred").all() and diag["provisional"].all()
@@ -285,6 +287,108 @@ def test_hierarchical_run_reports_its_gate(tide):
     else:
         assert not compare["called"].any()
         assert any(n.startswith("ELPD comparison not called") for n in result.notes)
+
+
+# -- exact leave-one-out where PSIS is unreliable --------------------------------------------------
+def test_exact_units_match_arviz_reloo():
+    # ArviZ's reloo (Kumar et al., 2019) refits through a SamplingWrapper; a stub that returns
+    # given held-out log-likelihoods makes it the reference for the update of the LOO estimate.
+    import xarray as xr
+
+    idata = _idata(0.0)
+    loo = psis_loo(idata)
+    k = np.asarray(loo.pareto_k)
+    threshold = float(np.sort(k)[-4])  # the three units with the largest k are refitted
+    rng = np.random.default_rng(5)
+    held = {int(u): rng.normal(-1.2, 0.3, size=(4, 1000)) for u in np.flatnonzero(k > threshold)}
+
+    class Stub(az.SamplingWrapper):
+        def sel_observations(self, idx):
+            unit = int(np.ravel(idx)[0])
+            return unit, unit
+
+        def sample(self, modified_observed_data):
+            return modified_observed_data
+
+        def get_inference_data(self, fitted_model):
+            return fitted_model
+
+        def log_likelihood__i(self, excluded_obs, idata__i):
+            return xr.DataArray(held[excluded_obs])
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # reloo announces itself as experimental
+        ref = az.reloo(Stub(None, idata_orig=idata), loo_orig=loo, k_thresh=threshold, verbose=False)
+    got = exact_units(loo, held)
+    assert len(held) == 3
+    for name in ("elpd_loo", "se", "p_loo"):
+        assert got[name] == pytest.approx(ref[name], rel=1e-12), name
+    np.testing.assert_allclose(got.loo_i, ref.loo_i, rtol=1e-12)
+    np.testing.assert_array_equal(got.pareto_k, ref.pareto_k)
+    assert float(loo.elpd_loo) != pytest.approx(float(got.elpd_loo))  # the input is left as it was
+
+
+def test_leaving_a_unit_out_equals_pooling_the_other_units():
+    rng = np.random.default_rng(11)
+    n = np.array([40, 25, 60, 30, 45])
+    participant = np.array([0, 0, 1, 1, 2])
+    order = np.array([0.0, 1.0, 0.0, 1.0, 0.0])
+    x_raw = rng.gamma(2.0, 0.6, size=n.sum())
+    y = -0.6 + 0.2 * x_raw + 0.2 * rng.standard_normal(n.sum())
+    unit = np.repeat(np.arange(len(n)), n)
+
+    def pooled_from(keep: np.ndarray) -> _Pooled:  # as foretell.rt._pool builds it: centred over kept trials
+        at = np.isin(unit, keep)
+        x = x_raw[at] - x_raw[at].mean()
+        t = order[unit[at]] - order[unit[at]].mean()
+        starts = np.r_[0, np.cumsum(n[keep])[:-1]]
+        return _Pooled(unit_statistics(y[at], x, starts), t[starts], participant[keep], ("a", "b", "c"),
+                       np.zeros(3, int), ("all",), tuple(map(str, keep)), float(y[at].mean()))
+
+    full = pooled_from(np.arange(len(n)))
+    u = 2
+    without, every = leave_out(full, u)
+    rest = np.delete(np.arange(len(n)), u)
+    ref = pooled_from(rest)
+    assert without.y_mean == pytest.approx(ref.y_mean, rel=1e-12)
+    for name in UnitStats.__dataclass_fields__:
+        np.testing.assert_allclose(getattr(without.stats, name)[rest], getattr(ref.stats, name),
+                                   rtol=1e-9, atol=1e-12, err_msg=name)
+    np.testing.assert_allclose(without.trend[rest], ref.trend, atol=1e-12)
+    assert without.stats.n[u] == 0 and every.stats.n[u] == n[u]
+    # at any parameters, the left-out unit adds exactly nothing, and keeps its own likelihood
+    # in the shifted coordinates (scipy.stats reference, trial by trial)
+    level, slope, sigma = rng.normal(-0.6, 0.1, 5), rng.normal(0.2, 0.1, 5), rng.uniform(0.1, 0.4, 5)
+    ll = gaussian_unit_loglik(level, slope, sigma, np.log(sigma), without.stats)
+    assert ll[u] == 0.0
+    x_rest = x_raw[np.isin(unit, rest)].mean()
+    at = unit == u
+    direct = norm.logpdf(y[at], level[u] + slope[u] * (x_raw[at] - x_rest), sigma[u]).sum()
+    assert gaussian_unit_loglik(level, slope, sigma, np.log(sigma), every.stats)[u] == pytest.approx(direct)
+
+
+def test_units_with_a_high_pareto_k_are_refitted(tide):
+    frame, _ = simulate_participants(tide, 2, 2, models=["count-1"], seed=4, block_length=40)
+    log = validate_log(frame, tide)
+    run = {"draws": 150, "tune": 150, "chains": 2, "seed": 1}
+    loose = Gate(rhat_max=1.2, ess_bulk_per_chain=10, max_divergences=10)  # short runs; k is the point
+    capped = analyse_rt(log, tide, ["count-1"], gate=replace(loose, pareto_k_max=0.0), refits=0, **run)
+    diag = capped.diagnostics.iloc[0]  # every unit above the limit, no refit allowed
+    assert diag["loo_refits"] == 0 and not diag["ok"] and "Pareto k" in diag["reasons"]
+    assert any("would need as many refits" in n for n in capped.notes)
+    k = pareto_k(capped.posteriors["count-1"])
+    limit = float(np.sort(k)[-2])  # the same seed gives the same posterior: one unit above this
+    result = analyse_rt(log, tide, ["count-1"], gate=replace(loose, pareto_k_max=limit), refits=1, **run)
+    diag = result.diagnostics.iloc[0]
+    assert diag["loo_refits"] == 1
+    assert diag["pareto_k_max"] <= limit  # the refitted unit is exact: no importance sampling left above
+    assert any("estimated by exact leave-one-out refits" in n for n in result.notes)
+    hopeless = analyse_rt(log, tide, ["count-1"], gate=replace(loose, pareto_k_max=0.0,
+                                                               ess_bulk_per_chain=1e9), **run)
+    assert hopeless.diagnostics.iloc[0]["loo_refits"] == 0  # no refits when the gate fails anyway
+    assert any("not refitted" in n for n in hopeless.notes)
+    with pytest.raises(UsageError, match="refits"):
+        analyse_rt(log, tide, ["count-1"], refits=-1)
 
 
 @pytest.mark.slow

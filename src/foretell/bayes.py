@@ -199,14 +199,15 @@ class Diagnostics:
 
 
 def diagnose(idata: az.InferenceData, sampler: str, gate: Gate = Gate(),
-             var_names: Sequence[str] | None = None) -> Diagnostics:
+             var_names: Sequence[str] | None = None, loo: az.ELPDData | None = None) -> Diagnostics:
     """Return the :class:`Diagnostics` of a posterior against ``gate``.
 
     R-hat is ArviZ's rank-normalised split R-hat and ESS its bulk ESS
     (Vehtari et al., 2021), the worst over ``var_names`` (default: every
     posterior variable); divergences are summed over chains; Pareto k is the
-    largest of PSIS-LOO over the ``log_likelihood`` group (Vehtari, Gelman &
-    Gabry, 2017), NaN when the posterior has none.
+    largest of ``loo`` (default: PSIS-LOO over the ``log_likelihood`` group;
+    Vehtari, Gelman & Gabry, 2017), NaN when the posterior has none. A gate
+    with an infinite ``pareto_k_max`` does not check it.
     """
     post = idata.posterior
     chains, draws = int(post.sizes["chain"]), int(post.sizes["draw"])
@@ -217,7 +218,10 @@ def diagnose(idata: az.InferenceData, sampler: str, gate: Gate = Gate(),
     rhat_max = _worst(rhat, np.nanmax, chains)
     ess_min = _worst(ess, np.nanmin, chains)
     divergences = int(idata.sample_stats["diverging"].sum()) if "sample_stats" in idata else 0
-    k_max = pareto_k(idata).max() if "log_likelihood" in idata else math.nan
+    if loo is not None:
+        k_max = float(np.max(loo.pareto_k))
+    else:
+        k_max = pareto_k(idata).max() if "log_likelihood" in idata else math.nan
     reasons = []
     if not rhat_max <= gate.rhat_max:
         reasons.append(f"R-hat {rhat_max:.3f} > {gate.rhat_max:g}")
@@ -225,7 +229,7 @@ def diagnose(idata: az.InferenceData, sampler: str, gate: Gate = Gate(),
         reasons.append(f"bulk ESS {ess_min:.0f} < {gate.ess_bulk_per_chain:g} x {chains} chains")
     if divergences > gate.max_divergences:
         reasons.append(f"{divergences} divergent transitions")
-    if not k_max <= gate.pareto_k_max:
+    if math.isfinite(gate.pareto_k_max) and not k_max <= gate.pareto_k_max:
         reasons.append(f"Pareto k {k_max:.2f} > {gate.pareto_k_max:g}" if math.isfinite(k_max)
                        else "no pointwise log-likelihood for PSIS-LOO")
     provisional = chains < gate.full_chains or draws < gate.full_draws
@@ -235,9 +239,42 @@ def diagnose(idata: az.InferenceData, sampler: str, gate: Gate = Gate(),
 
 def pareto_k(idata: az.InferenceData) -> np.ndarray:
     """Return the PSIS Pareto k of every leave-one-out unit of the ``log_likelihood`` group."""
+    return np.asarray(psis_loo(idata).pareto_k).ravel()
+
+
+def psis_loo(idata: az.InferenceData) -> az.ELPDData:
+    """Return ArviZ's pointwise PSIS-LOO of the ``log_likelihood`` group, on the log scale."""
     with quiet():
-        loo = az.loo(idata, pointwise=True)
-    return np.asarray(loo.pareto_k).ravel()
+        return az.loo(idata, pointwise=True, scale="log")
+
+
+def exact_units(loo: az.ELPDData, held_out: Mapping[int, np.ndarray]) -> az.ELPDData:
+    """Return ``loo`` with the PSIS estimates of some units replaced by exact leave-one-out ones.
+
+    ``held_out[u]``: unit u's log-likelihood at every draw of the posterior
+    refitted without u; its exact term is elpd_u = log (1/S) sum_s p(y_u |
+    theta_s^(-u)). Then elpd_loo = sum_u elpd_u, se = sqrt(n var(elpd_u)) and
+    p_loo = lppd - elpd_loo, lppd that of the full posterior (Vehtari, Gelman &
+    Gabry, 2017: refit where Pareto k > 0.7; the same update as ArviZ's
+    ``reloo``). The refitted units' Pareto k is set to 0: no importance
+    sampling was done for them.
+    """
+    from scipy.special import logsumexp
+
+    out = loo.copy()
+    loo_i = np.asarray(loo.loo_i, dtype=float).copy()
+    k = np.asarray(loo.pareto_k, dtype=float).copy()
+    for u, ll in held_out.items():
+        ll = np.asarray(ll, dtype=float).ravel()
+        loo_i[u] = logsumexp(ll) - math.log(len(ll))
+        k[u] = 0.0
+    lppd = float(loo.p_loo) + float(loo.elpd_loo)
+    out["loo_i"] = loo.loo_i.copy(data=loo_i)
+    out["pareto_k"] = loo.pareto_k.copy(data=k)
+    out["elpd_loo"] = float(loo_i.sum())
+    out["se"] = float(math.sqrt(len(loo_i) * np.var(loo_i)))
+    out["p_loo"] = lppd - float(loo_i.sum())
+    return out
 
 
 def _worst(dataset: object, reduce: object, chains: int) -> float:
@@ -255,12 +292,15 @@ COMPARE_COLUMNS = ("model", "rank", "elpd", "se", "d_elpd", "dse", "p_loo", "wei
                    "provisional")
 
 
-def compare_loo(idatas: Mapping[str, az.InferenceData], diagnostics: Mapping[str, Diagnostics],
+def compare_loo(idatas: Mapping[str, az.InferenceData | az.ELPDData],
+                diagnostics: Mapping[str, Diagnostics],
                 gate: Gate = Gate()) -> tuple[pd.DataFrame, list[str]]:
     """Return (comparison table, notes) of models by PSIS-LOO expected log predictive density.
 
+    ``idatas``: posteriors (PSIS-LOO over their ``log_likelihood`` group) or
+    their LOO results (e.g. with exact refits, :func:`exact_units`).
     Columns: model, rank (1 = highest elpd), elpd (elpd_loo, log scale, over
-    the units of the ``log_likelihood`` group), se, d_elpd (difference to the
+    the leave-one-out units), se, d_elpd (difference to the
     best: elpd - best elpd, <= 0), dse (its standard error), p_loo, weight (stacking weights; Yao et
     al., 2018), called, provisional. ArviZ's ``compare`` (Vehtari, Gelman &
     Gabry, 2017). ``called`` is True on every row only when every model's

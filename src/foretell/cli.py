@@ -114,6 +114,13 @@ def _add_sampling_options(p: argparse.ArgumentParser, *, min_chains: int, seed_h
     p.add_argument("--jobs", type=_jobs, default=1, help=jobs_help)
 
 
+def _add_refits(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--refits", type=_count(0),
+                   help="most exact leave-one-out refits per RT model, for the participant x block "
+                        "units whose PSIS Pareto k is above 0.7 (default 10; each is one more "
+                        "MCMC run)")
+
+
 def _add_backend_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--backend", choices=("local", "dask"), default="local",
                    help="where the per-participant jobs run: this machine (local, the default) or "
@@ -184,6 +191,7 @@ def build_parser() -> argparse.ArgumentParser:
                           jobs_help="work in parallel (-1: all cores)")
     p.add_argument("--trials", choices=TRIALS_CHOICES, default="best",
                    help="rows of fit/trials.csv (see foretell fit --help)")
+    _add_refits(p)
     _add_backend_options(p)
     _add_force(p)
 
@@ -231,6 +239,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="model the log of a measure other than rt (rt is always modelled on the log scale)")
     _add_sampling_options(p, min_chains=1, seed_help="seed of the samplers (>= 0)",
                           jobs_help="participants computed and chains sampled in parallel")
+    _add_refits(p)
     _add_backend_options(p)
     _add_force(p)
 
@@ -442,7 +451,7 @@ def _cmd_rt(args: argparse.Namespace) -> int:
         result = analyse_rt(log, task, _csv_list(args.models), measure=args.measure,
                             locked=args.locked, fits=fits, bayes=args.bayes, draws=args.draws,
                             chains=args.chains, seed=args.seed, n_jobs=args.jobs,
-                            progress=sys.stderr.isatty(),
+                            refits=args.refits, progress=sys.stderr.isatty(),
                             log_transform=True if args.measure == "rt" else args.log_transform)
     for line in result.notes:
         _say(f"note: {line}")
@@ -559,6 +568,7 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
                          skip=_csv_list(args.skip) or (), recovery=args.recovery, seed=args.seed,
                          n_jobs=args.jobs, bayes=args.bayes, draws=args.draws, chains=args.chains,
                          tune=args.draws, force=args.force, inputs=inputs, trials=args.trials,
+                         refits=args.refits,
                          manifest=_run_record(args, inputs), progress=sys.stderr.isatty())
     _report_run(result, args.out)
     return 0

@@ -67,7 +67,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
             seed: int = 0, n_jobs: int = 1, bayes: bool = True, draws: int = 1000, chains: int = 4,
             tune: int = 1000, provisional: bool = False, force: bool = False, inputs: Sequence[str | Path] = (),
             manifest: Mapping[str, object] | None = None, progress: bool | None = None,
-            trials: str = "best") -> AnalysisResult:
+            trials: str = "best", refits: int | None = None) -> AnalysisResult:
     """Return (and with ``out``, write) the whole analysis of a study.
 
     Steps, each with a progress bar: validation (summary, warnings,
@@ -83,7 +83,8 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
     folder whose tables are copied under ``recovery/`` and shown in the
     report. ``bayes`` runs the hierarchical Bayesian models of the RT and
     group steps (without it: summed BIC and permutation tests only);
-    ``draws``, ``chains``, ``tune`` go to those models;
+    ``draws``, ``chains``, ``tune`` go to those models, ``refits`` (exact
+    leave-one-out refits per RT model) to :func:`foretell.rt.analyse_rt`;
     ``provisional`` marks their comparisons provisional in the report (demo
     mode). ``inputs`` are files whose SHA-256 the manifest records and that
     ``out`` may not hold.
@@ -145,7 +146,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
                     result = analyse_rt(log, task, rt_models or _fitted_models(fitted, models),
                                         fits=fitted.fits if fitted is not None else None, bayes=bayes,
                                         draws=draws, chains=chains, tune=tune, seed=seed, n_jobs=n_jobs,
-                                        progress=False)
+                                        refits=refits, progress=False)
                     results["rt"] = result
                     tables |= {f"rt/{k}": v for k, v in result.tables().items()}
                     texts["rt/summary.txt"] = "".join(f"{n}\n" for n in result.notes)

@@ -292,7 +292,7 @@ def _diagnostics_table(table: pd.DataFrame, key: str, caption: str) -> Table:
     return _table(table, {key: key, "sampler": "sampler", "chains": "chains", "draws": "draws per chain",
                           "rhat_max": "largest R-hat", "ess_bulk_min": "smallest bulk ESS",
                           "divergences": "divergences", "pareto_k_max": "largest Pareto k",
-                          "ok": "passed", "provisional": "provisional", "reasons": "why not passed"},
+                          "loo_refits": "exact LOO refits", "ok": "passed", "provisional": "provisional", "reasons": "why not passed"},
                   caption, {"rhat_max": ".3f", "ess_bulk_min": ".0f", "pareto_k_max": ".2f"})
 
 
@@ -668,7 +668,8 @@ def _methods(folder: _Folder) -> tuple[Method, ...]:
             Method("RT regressions", "log RT = b0 + b · entropy (or surprise) + c · block, by OLS with "
                    "heteroscedasticity- and autocorrelation-consistent errors.", "Newey & West (1987)"),
             Method("Bayesian RT comparison", "hierarchical models compared by expected log predictive density "
-                   "estimated with Pareto-smoothed importance sampling leave-one-out.",
+                   "estimated with Pareto-smoothed importance sampling leave-one-out; units with Pareto "
+                   "k above 0.7 left out and the model refitted without them (exact leave-one-out).",
                    "Vehtari, Gelman & Gabry (2017)"),
         ]
     if folder.has("groups"):

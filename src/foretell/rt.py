@@ -21,7 +21,7 @@ from joblib import Parallel, delayed
 from scipy.stats import norm
 
 from foretell.bayes import (PARAMETERISATIONS, Diagnostics, Gate, choose_by_strength, compare_loo,
-                            diagnose, sample)
+                            diagnose, exact_units, psis_loo, sample)
 from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import UsageError
 from foretell.labels import block_label
@@ -41,6 +41,9 @@ CI_LEVEL = 0.95
 KASS_RAFTERY_VERY_STRONG = 10.0
 """A BIC margin (2 ln Bayes factor) above 10 is "very strong" evidence (Kass & Raftery, 1995)."""
 LOCKS = ("guess", "reveal")
+LOO_REFITS = 10
+"""Most exact leave-one-unit-out refits per model when PSIS-LOO's Pareto k is too high (each is a
+full MCMC run; Vehtari, Gelman & Gabry, 2017, advise refitting when only a few units are affected)."""
 _IRLS_MAX_ITER = 50
 _BATCH_TRIALS = 200_000  # most trials per batch of participants on the per-participant path
 _IRLS_TOL = 1e-10
@@ -182,7 +185,8 @@ class RTResult:
 
 
 DIAGNOSTIC_COLUMNS = ("model", "sampler", "intercept_form", "slope_form", "form_reason", "chains",
-                      "draws", "rhat_max", "ess_bulk_min", "divergences", "pareto_k_max", "ok",
+                      "draws", "rhat_max", "ess_bulk_min", "divergences", "pareto_k_max",
+                      "loo_refits", "ok",
                       "provisional", "reasons")
 COMPARE_COLUMNS = ("model", "rank", "criterion", "bic_sum", "d_bic_sum", "elpd", "se", "d_elpd",
                    "dse", "p_loo", "weight", "called", "provisional")
@@ -237,7 +241,8 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
                chains: int = 4, tune: int = 1000, seed: int = 0,
                parameterisation: str | Mapping[str, str] = "auto",
                n_jobs: int = 1, progress: bool | None = None, log_transform: bool | None = None,
-               block_start: int | None = None, gate: Gate = Gate()) -> RTResult:
+               block_start: int | None = None, gate: Gate = Gate(), refits: int | None = None
+               ) -> RTResult:
     """Return the :class:`RTResult` of explaining a per-trial measure by each learner model.
 
     ``measure``: "rt" (seconds, the default), the name of a numeric column of
@@ -277,6 +282,10 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     :func:`hierarchical_model`), sampled with ``chains`` x ``draws`` after
     ``tune`` (``n_jobs`` chains in parallel), checked by ``gate`` and compared
     by PSIS-LOO over participant x block units (:func:`foretell.bayes.compare_loo`).
+    Units whose Pareto k exceeds ``gate.pareto_k_max`` are left out one at a
+    time and the model refitted without them (exact leave-one-out; at most
+    ``refits`` per model, default :data:`LOO_REFITS`, else the gate fails on
+    k): see :func:`leave_out`.
     ``parameterisation``: "auto" (decide per parameter from the strength of
     the data, :func:`parameterisations`), "centred", "non-centred", or a
     mapping of "intercept" and "slope" to one of them.
@@ -312,7 +321,8 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
         posteriors, diag, elpd, more = _bayes(chosen, frame, columns, specs, spans, draws=draws,
                                               chains=chains, tune=tune, seed=seed,
                                               parameterisation=forms, n_jobs=n_jobs,
-                                              progress=progress, gate=gate)
+                                              progress=progress, gate=gate,
+                                              refits=LOO_REFITS if refits is None else refits)
         diagnostics = diag
         notes += more
         compare = _merge_elpd(compare, elpd)
@@ -838,6 +848,31 @@ def unit_loglik(idata: object, pooled: _Pooled) -> np.ndarray:
                                 np.log(sigma)[..., p], pooled.stats)
 
 
+def leave_out(pooled: _Pooled, unit: int) -> tuple[_Pooled, _Pooled]:
+    """Return (the data without ``unit``, every unit in the same coordinates) for an exact LOO refit.
+
+    The regressor and the block order are centred again over the remaining
+    trials, and the prior's centre (mean outcome) recomputed without them, as
+    :func:`_pool` would on those trials alone; the left-out unit's sums are
+    zero in the first (it adds exactly 0 to the likelihood of
+    :func:`gaussian_unit_loglik`), kept in the second, which gives its
+    likelihood under the refitted posterior (:func:`unit_loglik`).
+    """
+    s = pooled.stats
+    rest = np.ones(len(s.n), dtype=bool)
+    rest[unit] = False
+    n_rest = s.n[rest].sum()
+    x_shift = float((s.n * s.x_mean)[rest].sum() / n_rest)
+    t_shift = float((s.n * pooled.trend)[rest].sum() / n_rest)
+    moved = UnitStats(s.n, s.x_mean - x_shift, s.y_mean, s.sxx, s.sxy, s.syy)
+    every = replace(pooled, stats=moved, trend=pooled.trend - t_shift,
+                    y_mean=float((s.n * s.y_mean)[rest].sum() / n_rest))
+    keep = rest.astype(float)
+    without = replace(every, stats=UnitStats(s.n * keep, moved.x_mean, s.y_mean, s.sxx * keep,
+                                             s.sxy * keep, s.syy * keep))
+    return without, every
+
+
 def _pool(chosen: _Measure, frame: pd.DataFrame, columns: Mapping[str, np.ndarray], spec_index: int,
           n_models: int, spans: Mapping[str, slice]) -> _Pooled:
     """Return every participant's kept trials of one model, reduced to participant x block units."""
@@ -885,14 +920,17 @@ def _requested_forms(parameterisation: str | Mapping[str, str]) -> dict[str, str
 def _bayes(chosen: _Measure, frame: pd.DataFrame, columns: Mapping[str, np.ndarray],
            specs: Sequence[ModelSpec],
            spans: Mapping[str, slice], *, draws: int, chains: int, tune: int, seed: int,
-           parameterisation: Mapping[str, str], n_jobs: int, progress: bool | None, gate: Gate
-           ) -> tuple[dict[str, object], pd.DataFrame, pd.DataFrame, list[str]]:
+           parameterisation: Mapping[str, str], n_jobs: int, progress: bool | None, gate: Gate,
+           refits: int) -> tuple[dict[str, object], pd.DataFrame, pd.DataFrame, list[str]]:
     """Return (posteriors, diagnostics table, ELPD comparison, notes) of the hierarchical models."""
+    if isinstance(refits, bool) or not isinstance(refits, (int, np.integer)) or refits < 0:
+        raise UsageError(f"refits must be a whole number >= 0, got {refits!r}")
     seeds = np.random.SeedSequence(seed).spawn(len(specs))
     show = sys.stderr.isatty() if progress is None else bool(progress)
     cores = max(1, int(n_jobs)) if int(n_jobs) > 0 else chains
     posteriors: dict[str, object] = {}
     diagnostics: dict[str, Diagnostics] = {}
+    loos: dict[str, object] = {}
     rows, notes = [], []
     for j, (spec, ss) in enumerate(zip(specs, seeds)):
         pooled = _pool(chosen, frame, columns, j, len(specs), spans)
@@ -906,17 +944,65 @@ def _bayes(chosen: _Measure, frame: pd.DataFrame, columns: Mapping[str, np.ndarr
                                           progress=show)
         idata.add_groups(log_likelihood={"y": unit_loglik(idata, pooled)},
                          coords={"unit": list(pooled.units)}, dims={"y": ["unit"]})
-        diag = diagnose(idata, sampler, gate,
-                        var_names=[v for v in idata.posterior.data_vars if not v.endswith("_z")])
+        names = [v for v in idata.posterior.data_vars if not v.endswith("_z")]
+        loo = psis_loo(idata)
+        bad = np.flatnonzero(np.asarray(loo.pareto_k) > gate.pareto_k_max)
+        unchecked = replace(gate, pareto_k_max=math.inf)
+        failed: list[str] = []
+        n_refits = 0
+        high = (f"{spec.model_id}: {len(bad)} participant x block "
+                f"{'unit has' if len(bad) == 1 else 'units have'} Pareto k > {gate.pareto_k_max:g}")
+        if len(bad) and not diagnose(idata, sampler, unchecked, names).ok:
+            notes.append(f"{high}; not refitted: the posterior fails the gate on other grounds")
+        elif 0 < len(bad) <= refits and len(pooled.units) > 1:
+            run = {"draws": draws, "tune": tune, "chains": chains, "cores": cores}
+            held_out, failed = _refit_units(pooled, forms, bad, ss, run, unchecked, names)
+            loo, n_refits = exact_units(loo, held_out), len(held_out)
+            notes.append(f"{high}: estimated by exact leave-one-out refits")
+        elif len(bad):
+            notes.append(f"{high}; exact leave-one-out would need as many refits, {refits} allowed "
+                         "(refits=, --refits)")
+        diag = diagnose(idata, sampler, gate, names, loo=loo)
+        if failed:  # the first, and how many more
+            more = f" (and {len(failed) - 1} more of {len(bad)} refits)" if len(failed) > 1 else ""
+            diag = replace(diag, ok=False, reasons=diag.reasons + (failed[0] + more,))
         posteriors[spec.model_id] = idata
         diagnostics[spec.model_id] = diag
+        loos[spec.model_id] = loo
         how = "; ".join(f"{name}: {reasons[name]}" for name in HIERARCHICAL)
         rows.append({"model": spec.model_id, "intercept_form": forms["intercept"],
-                     "slope_form": forms["slope"], "form_reason": how, **diag.row()})
+                     "slope_form": forms["slope"], "form_reason": how, **diag.row(),
+                     "loo_refits": n_refits})
         notes.append(f"{spec.model_id}: hierarchical model with {forms['intercept']} intercepts "
                      f"and {forms['slope']} slopes ({how}); sampled with {sampler} NUTS, "
                      f"{chains} chains x {draws} draws after {tune} tuning")
         notes += [f"{spec.model_id}: sampler said: {m}" for m in messages]
-    elpd, more = compare_loo(posteriors, diagnostics, gate)
+    elpd, more = compare_loo(loos, diagnostics, gate)
     notes += more
     return posteriors, pd.DataFrame(rows, columns=list(DIAGNOSTIC_COLUMNS)), elpd, notes
+
+
+def _refit_units(pooled: _Pooled, forms: Mapping[str, str], units: np.ndarray,
+                 model_seed: np.random.SeedSequence, run: Mapping[str, int], gate: Gate,
+                 names: Sequence[str]) -> tuple[dict[int, np.ndarray], list[str]]:
+    """Return ({unit: its log-likelihood draws under the model refitted without it}, gate failures).
+
+    One MCMC run per unit (:func:`leave_out`), each checked by ``gate``.
+    """
+    held_out: dict[int, np.ndarray] = {}
+    failed: list[str] = []
+    for u in (int(v) for v in units):
+        without, every = leave_out(pooled, u)
+        refit, sampler, _ = sample(hierarchical_model(without, forms), seed=_refit_seed(model_seed, u),
+                                   **run)
+        held_out[u] = unit_loglik(refit, every)[..., u]
+        check = diagnose(refit, sampler, gate, names)
+        if check.reasons:
+            failed.append(f"exact refit without {pooled.units[u]}: {', '.join(check.reasons)}")
+    return held_out, failed
+
+
+def _refit_seed(model_seed: np.random.SeedSequence, unit: int) -> int:
+    """Return the sampler seed of the exact refit without ``unit``: the same whichever units are refitted."""
+    child = np.random.SeedSequence(model_seed.entropy, spawn_key=(*model_seed.spawn_key, 1 + unit))
+    return int(child.generate_state(1)[0])
