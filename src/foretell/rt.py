@@ -954,7 +954,9 @@ def _bayes(chosen: _Measure, frame: pd.DataFrame, columns: Mapping[str, np.ndarr
                 f"{'unit has' if len(bad) == 1 else 'units have'} Pareto k > {gate.pareto_k_max:g}")
         if len(bad) and not diagnose(idata, sampler, unchecked, names).ok:
             notes.append(f"{high}; not refitted: the posterior fails the gate on other grounds")
-        elif 0 < len(bad) <= refits and len(pooled.units) > 1:
+        elif len(bad) and len(pooled.units) == 1:
+            notes.append(f"{high}; a single unit cannot be left out")
+        elif 0 < len(bad) <= refits:
             run = {"draws": draws, "tune": tune, "chains": chains, "cores": cores}
             held_out, failed = _refit_units(pooled, forms, bad, ss, run, unchecked, names)
             loo, n_refits = exact_units(loo, held_out), len(held_out)
