@@ -46,7 +46,7 @@ def simulated_log(task: Task, learner, inv_temp: float, lapse: float, n_trials: 
 # -- the choice rule against reference libraries ------------------------------------------------
 def test_choice_terms_match_scipy_softmax_and_the_choice_rule():
     # P(guess=a) = (1-lapse) softmax(inv_temp log p)_a + lapse/m (the choice rule of issue 3;
-    # softmax with lapse, common practice); softmax from scipy.special (reference library).
+    # softmax with lapse, common practice); softmax from scipy.special (reference library; Virtanen et al., 2020).
     rng = np.random.default_rng(3)
     pred = rng.dirichlet(np.ones(4), size=200)
     guess = rng.integers(0, 4, size=200)
@@ -59,7 +59,7 @@ def test_choice_terms_match_scipy_softmax_and_the_choice_rule():
 
 
 def test_choice_terms_gradient_matches_finite_differences():
-    # Analytic derivatives against scipy.optimize.approx_fprime (reference library).
+    # Analytic derivatives against scipy.optimize.approx_fprime (reference library; Virtanen et al., 2020).
     rng = np.random.default_rng(4)
     log_pred = np.log(rng.dirichlet(np.ones(3), size=300))
     guess = rng.integers(0, 3, size=300)
@@ -368,7 +368,7 @@ def test_generating_depth_wins_by_bic(depth_recovery):
 
 
 def test_inv_temp_is_recovered_for_depth_1_and_2(depth_recovery):
-    # rank correlation of true and fitted inv_temp (scipy.stats.spearmanr, reference library)
+    # rank correlation of true and fitted inv_temp (scipy.stats.spearmanr, reference library; Virtanen et al., 2020)
     fits, truth = depth_recovery
     merged = truth.merge(fits, on=["participant", "model"], suffixes=("_true", ""))
     chosen = merged[merged["true_depth"].isin([1, 2])]

@@ -294,7 +294,7 @@ def test_hdi_is_arviz_hdi_of_the_same_draws():
     import arviz as az
 
     draws = np.random.default_rng(0).gamma(2.0, size=(2, 500))
-    assert np.allclose(hdi(draws), az.hdi(draws.ravel(), hdi_prob=0.94))  # ArviZ (reference library)
+    assert np.allclose(hdi(draws), az.hdi(draws.ravel(), hdi_prob=0.94))  # ArviZ (reference library; Kumar et al., 2019)
 
 
 def test_group_model_finds_a_late_difference_and_no_null_difference():

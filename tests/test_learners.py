@@ -56,7 +56,7 @@ def test_kt_closed_form_binary():
 
 @pytest.mark.parametrize("m, alpha", [(3, 0.5), (4, 1.0), (5, 2.5), (8, 0.1)])
 def test_dirichlet_multinomial_marginal(m, alpha):
-    # scipy.stats.dirichlet_multinomial (reference library) gives the pmf of the counts; the
+    # scipy.stats.dirichlet_multinomial (reference library; Virtanen et al., 2020) gives the pmf of the counts; the
     # sequential likelihood of one ordering is that pmf divided by the multinomial coefficient.
     x = np.random.default_rng(m).integers(0, m, 200)
     counts = np.bincount(x, minlength=m)

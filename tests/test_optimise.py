@@ -21,7 +21,7 @@ def _data(seed: int, n: int = 300, m: int = 3):
 
 def test_sums_match_choice_terms_and_hessian_matches_finite_differences():
     # value and gradient against foretell.choice.choice_terms; the Hessian against central
-    # differences of that gradient (scipy.optimize.approx_fprime, reference library)
+    # differences of that gradient (scipy.optimize.approx_fprime, reference library; Virtanen et al., 2020)
     log_pred, guess = _data(1)
     ptr, idx = np.array([0, 300]), np.arange(300)
     for point in ([1.7, 0.08], [0.3, 0.4], [6.0, 0.001]):
@@ -41,7 +41,7 @@ def test_sums_match_choice_terms_and_hessian_matches_finite_differences():
 
 
 def test_newton_finds_the_bounded_optimum_of_every_row_at_once():
-    # each row against scipy's bounded L-BFGS-B on the same function (reference library)
+    # each row against scipy's bounded L-BFGS-B on the same function (reference library; Virtanen et al., 2020)
     log_pred, guess = _data(2, n=400)
     ptr = np.array([0, 400, 550, 700])
     idx = np.r_[np.arange(400), np.arange(150), np.arange(250, 400)]
@@ -57,7 +57,7 @@ def test_newton_finds_the_bounded_optimum_of_every_row_at_once():
 
 
 def test_brent_generator_finds_a_bounded_minimum():
-    # against scipy.optimize.minimize_scalar(method="bounded") (reference library)
+    # against scipy.optimize.minimize_scalar(method="bounded") (reference library; Virtanen et al., 2020)
     f = lambda x: (x - 0.3) ** 2 + 0.1 * x ** 3 + 0.05 * math.sin(x)  # noqa: E731  (unimodal on [0, 1])
     search = brent(0.0, 1.0, 0.9, f(0.9))
     x = next(search)
@@ -86,7 +86,7 @@ def test_a_row_does_not_depend_on_the_other_rows_of_its_batch():
 
 def test_newton_with_lapse_held_matches_a_bounded_scalar_search():
     # one free coordinate (log inv_temp), lapse held at 0.1; reference: scipy.optimize.minimize_scalar
-    # (method="bounded", reference library) on the same function
+    # (method="bounded", reference library; Virtanen et al., 2020) on the same function
     log_pred, guess = _data(4, n=300, m=4)
     batch = Batch(log_pred, guess, np.array([0, 300]), np.arange(300))
     space = ChoiceSpace.make(("inv_temp",), {"lapse": 0.1})

@@ -29,7 +29,7 @@ def test_entropy_and_surprise_match_the_learner(small, tide):
     rows = table[table["participant"] == "p01"]
     x = small.frame.loc[small.frame["participant"] == "p01", "stimulus_idx"].to_numpy()
     pred = Counting(depth=1).next_proba(x, 2)
-    # Shannon entropy in bits against scipy.stats.entropy (reference library)
+    # Shannon entropy in bits against scipy.stats.entropy (reference library; Virtanen et al., 2020)
     np.testing.assert_allclose(rows["entropy"], scipy_entropy(pred, base=2, axis=1), rtol=1e-12)
     np.testing.assert_allclose(rows["surprise"], -np.log2(pred[np.arange(len(x)), x]), rtol=1e-12)
     np.testing.assert_allclose(rows["prev_surprise"].to_numpy()[1:],

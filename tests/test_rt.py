@@ -41,7 +41,7 @@ def test_ols_matches_lstsq_and_linregress():
     coef = np.linalg.lstsq(X, y, rcond=None)[0]  # numpy reference
     np.testing.assert_allclose(fit.coef[0], coef, rtol=1e-10)
     np.testing.assert_allclose(fit.coef[1], coef[::-1], rtol=1e-10)
-    ref = linregress(X[:, 1], y)  # scipy.stats reference
+    ref = linregress(X[:, 1], y)  # scipy.stats reference (Virtanen et al., 2020)
     assert fit.coef[0, 1] == pytest.approx(ref.slope, rel=1e-10)
     assert fit.r2[0] == pytest.approx(ref.rvalue ** 2, rel=1e-10)
     rss = ((y - X @ coef) ** 2).sum()
@@ -220,7 +220,7 @@ def test_sufficient_statistics_give_the_trial_by_trial_gaussian_loglik():
     sigma = rng.uniform(0.1, 0.5, size=(3, len(n)))
     got = gaussian_unit_loglik(level, slope, sigma, np.log(sigma), stats)
     unit = np.repeat(np.arange(len(n)), n)
-    for d in range(3):  # scipy.stats reference: the Gaussian log-density, trial by trial
+    for d in range(3):  # scipy.stats reference (Virtanen et al., 2020): the Gaussian log-density, trial by trial
         ref = np.bincount(unit, norm.logpdf(y, level[d, unit] + slope[d, unit] * x,
                                             sigma[d, unit]))
         np.testing.assert_allclose(got[d], ref, rtol=0, atol=1e-9)
@@ -357,7 +357,7 @@ def test_leaving_a_unit_out_equals_pooling_the_other_units():
     np.testing.assert_allclose(without.trend[rest], ref.trend, atol=1e-12)
     assert without.stats.n[u] == 0 and every.stats.n[u] == n[u]
     # at any parameters, the left-out unit adds exactly nothing, and keeps its own likelihood
-    # in the shifted coordinates (scipy.stats reference, trial by trial)
+    # in the shifted coordinates (scipy.stats reference (Virtanen et al., 2020), trial by trial)
     level, slope, sigma = rng.normal(-0.6, 0.1, 5), rng.normal(0.2, 0.1, 5), rng.uniform(0.1, 0.4, 5)
     ll = gaussian_unit_loglik(level, slope, sigma, np.log(sigma), without.stats)
     assert ll[u] == 0.0
