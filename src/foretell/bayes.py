@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from scipy.special import logsumexp
 
 from foretell.errors import UsageError
 
@@ -259,8 +260,6 @@ def exact_units(loo: az.ELPDData, held_out: Mapping[int, np.ndarray]) -> az.ELPD
     ``reloo``). The refitted units' Pareto k is set to 0: no importance
     sampling was done for them.
     """
-    from scipy.special import logsumexp
-
     out = loo.copy()
     loo_i = np.asarray(loo.loo_i, dtype=float).copy()
     k = np.asarray(loo.pareto_k, dtype=float).copy()

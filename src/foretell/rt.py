@@ -952,7 +952,7 @@ def _bayes(chosen: _Measure, frame: pd.DataFrame, columns: Mapping[str, np.ndarr
         n_refits = 0
         high = (f"{spec.model_id}: {len(bad)} participant x block "
                 f"{'unit has' if len(bad) == 1 else 'units have'} Pareto k > {gate.pareto_k_max:g}")
-        if len(bad) and not diagnose(idata, sampler, unchecked, names).ok:
+        if len(bad) and not diagnose(idata, sampler, unchecked, names, loo=loo).ok:
             notes.append(f"{high}; not refitted: the posterior fails the gate on other grounds")
         elif len(bad) and len(pooled.units) == 1:
             notes.append(f"{high}; a single unit cannot be left out")
