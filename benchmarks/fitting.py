@@ -1,4 +1,4 @@
-"""Benchmark of foretell.fitting.fit_participants against the reference fitter (run by hand, on a quiet machine).
+"""Benchmark of foretell.fitting.participants.fit_participants against the reference fitter (run by hand, on a quiet machine).
 
 Three study shapes, each fitted with the default models, 3 starts,
 leave-one-block-out CV and per-block refits, n_jobs=2:
@@ -35,7 +35,7 @@ from pathlib import Path
 import pandas as pd
 import psutil
 
-from foretell.fitting import fit_participants
+from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
 from foretell.models import default_models
 from foretell.simulate import ParticipantSpec, simulate_participants
@@ -155,7 +155,7 @@ def main() -> None:
         print(json.dumps(run_shape(int(n), int(trials), int(blocks), task, args.n_jobs,
                                    args.reference_participants)))
         return
-    print(f"foretell.fitting.fit_participants, default models, 3 starts, CV and block refits, "
+    print(f"foretell.fitting.participants.fit_participants, default models, 3 starts, CV and block refits, "
           f"n_jobs={args.n_jobs}; {os.cpu_count()} cores")
     for name, (n, trials, blocks, task, target) in SHAPES.items():
         if args.only not in (None, name):

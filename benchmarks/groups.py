@@ -1,4 +1,4 @@
-"""Benchmark of the hierarchical group model of foretell.groups (run by hand).
+"""Benchmark of the hierarchical group model of foretell.steps.groups (run by hand).
 
 40 simulated participants (two groups of 20: count-0 and count-2 learners) x
 10 blocks of 100 trials of the lantern-relay task; the binomial model of
@@ -20,8 +20,8 @@ import argparse
 import time
 
 
-from foretell.bayes import diagnose, sample
-from foretell.groups import GATE, compare_groups, fit_group_model, learning_curves, model_data, permutation_effects
+from foretell.hierarchical.sampling import diagnose, sample
+from foretell.steps.groups import GATE, compare_groups, fit_group_model, learning_curves, model_data, permutation_effects
 from foretell.logs import validate_log
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task

@@ -1,8 +1,8 @@
-"""Benchmark of foretell.recovery.recover against the fitting it cannot avoid (run by hand).
+"""Benchmark of foretell.steps.design.recover against the fitting it cannot avoid (run by hand).
 
 40 simulated participants x 3 models (count-0, count-1, count-2) x 3 trial
 counts (120, 360, 600; blocks of 120) on the lantern-relay task. The
-reference is the fitter alone (:func:`foretell.fitting.fit_participants`, the
+reference is the fitter alone (:func:`foretell.fitting.participants.fit_participants`, the
 same options) on the same simulated participants, one call per cell: the
 ratio says how much the recovery layer (simulation, validation, credit,
 random-effects group check, tables) adds. Target: the whole recovery in about
@@ -18,9 +18,9 @@ import time
 
 import numpy as np
 
-from foretell.fitting import fit_participants
+from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
-from foretell.recovery import DEFAULT_RANGES, _Drawer, _Plan, _simulate, recover
+from foretell.steps.design import DEFAULT_RANGES, _Drawer, _Plan, _simulate, recover
 from foretell.tasks import load_task
 
 MODELS = ["count-0", "count-1", "count-2"]

@@ -1,7 +1,7 @@
-"""Reference fitter (the per-participant scipy.optimize path foretell.fitting replaced): plain L-BFGS-B per fit.
+"""Reference fitter (the per-participant scipy.optimize path foretell.fitting.participants replaced): plain L-BFGS-B per fit.
 
 Kept for the benchmark and the tests, which compare the batched fitter with it.
-Block refits here fit every free parameter on the block, as foretell.fitting does.
+Block refits here fit every free parameter on the block, as foretell.fitting.participants does.
 
 The likelihood of a participant's guesses under a model is the product over
 scored trials of the choice rule applied to the learner's prediction,

@@ -33,7 +33,7 @@ import statsmodels.api as sm
 from foretell.logs import validate_log
 from foretell.models import default_models, model_specs
 from foretell.regressors import regressors
-from foretell.rt import analyse_rt, newey_west_lags
+from foretell.steps.measures import analyse_rt, newey_west_lags
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 

@@ -1,11 +1,11 @@
 """Scale: many long sessions on one machine, and the same participants on a two-worker Dask cluster.
 
 Run by hand (PYTHONPATH=src python benchmarks/scale.py [--participants 200] [--trials 1000,2500,5000]).
-Prints, for each session length, the wall time of foretell.fitting.fit_participants with the default
+Prints, for each session length, the wall time of foretell.fitting.participants.fit_participants with the default
 models (CV and per-block refits included), the time per 1,000 trials and the peak resident memory of
 the process tree; then the same participants on a distributed.LocalCluster with two workers against
 local joblib with two processes (the ratio, and whether the tables are identical), and the same for
-the per-participant path of foretell.rt.analyse_rt (regressors, leak profiles, OLS/Huber fits), with
+the per-participant path of foretell.steps.measures.analyse_rt (regressors, leak profiles, OLS/Huber fits), with
 one local process as the plain reference. The load average is printed beside every figure: the
 ratios move with what else the machine runs.
 """
@@ -20,9 +20,9 @@ import time
 import pandas as pd
 
 from foretell.cluster import job_backend
-from foretell.fitting import fit_participants
+from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
-from foretell.rt import analyse_rt
+from foretell.steps.measures import analyse_rt
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 

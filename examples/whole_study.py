@@ -17,10 +17,10 @@ from pathlib import Path
 
 import foretell
 from foretell.demo import demo_log
-from foretell.figures import figure_png
-from foretell.groups import compare_groups
-from foretell.report import winners_heatmap
-from foretell.rt import analyse_rt
+from foretell.plots.common import figure_png
+from foretell.steps.groups import compare_groups
+from foretell.report.build import winners_heatmap
+from foretell.steps.measures import analyse_rt
 
 
 def main() -> None:

@@ -10,7 +10,7 @@ import pytest
 
 import foretell
 from foretell.choice import choice_proba
-from foretell.cli import main
+from foretell.cli.main import main
 from foretell.learners import Counting
 from foretell.tasks import load_task
 
@@ -58,7 +58,7 @@ def study() -> pd.DataFrame:
 
 
 @pytest.fixture(scope="module")
-def result(study: pd.DataFrame) -> foretell.analysis.FitResult:
+def result(study: pd.DataFrame) -> foretell.steps.guesses.FitResult:
     return foretell.fit(study, TASK_PATH, models=MODELS, seed=3, n_starts=2)
 
 

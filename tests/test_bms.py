@@ -7,7 +7,7 @@ import pytest
 from scipy import integrate, optimize, signal, stats
 from scipy.special import digamma, gammaln, logsumexp, softmax, xlogy
 
-from foretell.bms import (
+from foretell.stats.selection import (
     effective_sample_size,
     exceedance_prob,
     family_bms,

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from foretell.cli import main
+from foretell.cli.main import main
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
 
@@ -95,12 +95,12 @@ def test_zero_jobs_is_a_usage_error(tmp_path: Path, capsys: pytest.CaptureFixtur
 
 def test_existing_output_is_refused_before_any_work(tmp_path: Path, capsys: pytest.CaptureFixture[str],
                                                      monkeypatch: pytest.MonkeyPatch) -> None:
-    import foretell.analysis
+    import foretell.steps.guesses
 
     def no_fit(*args, **kwargs):
         raise AssertionError("fitting must not start when the output cannot be written")
 
-    monkeypatch.setattr(foretell.analysis, "fit", no_fit)
+    monkeypatch.setattr(foretell.steps.guesses, "fit", no_fit)
     out = tmp_path / "results"
     out.mkdir()
     (out / "old.csv").write_text("x\n")
@@ -234,7 +234,7 @@ def test_sigterm_leaves_no_output_and_no_worker(tmp_path: Path) -> None:
     log = tmp_path / "demo.csv"
     demo_log().to_csv(log, index=False)
     out = tmp_path / "res"
-    proc = subprocess.Popen([sys.executable, "-m", "foretell.cli", "fit", str(log), "--task",
+    proc = subprocess.Popen([sys.executable, "-m", "foretell.cli.main", "fit", str(log), "--task",
                              "lantern-relay", "--out", str(out), "--jobs", "2"],
                             stderr=subprocess.PIPE, stdout=subprocess.PIPE, start_new_session=True)
     time.sleep(6)

@@ -7,12 +7,12 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from foretell.cli import main
+from foretell.cli.main import main
 from foretell.cluster import batches, job_backend, job_count
 from foretell.errors import UsageError
-from foretell.fitting import fit_participants
+from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
-from foretell.rt import analyse_rt
+from foretell.steps.measures import analyse_rt
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 

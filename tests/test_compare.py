@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from foretell.bms import rfx_bms
+from foretell.stats.selection import rfx_bms
 from foretell.compare import (
     ALL,
     block_log_evidence_table,

@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 from foretell.errors import UsageError
-from foretell.events import (bids_labels, column_name, events_tables, sidecar_json, to_metadata,
+from foretell.steps.events import (bids_labels, column_name, events_tables, sidecar_json, to_metadata,
                              to_tsv)
 from foretell.logs import validate_log
 from foretell.regressors import regressors

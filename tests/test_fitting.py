@@ -1,4 +1,4 @@
-"""Tests of foretell.fitting: the guess likelihood, its optimum, criteria, CV, blocks, recovery."""
+"""Tests of foretell.fitting.participants: the guess likelihood, its optimum, criteria, CV, blocks, recovery."""
 
 from __future__ import annotations
 
@@ -19,7 +19,7 @@ from sklearn.linear_model import LogisticRegression
 from foretell.choice import choice_log_proba
 from foretell.errors import LogError, UsageError
 from foretell.choice import choice_terms
-from foretell.fitting import fit_participant, fit_participants
+from foretell.fitting.participants import fit_participant, fit_participants
 from foretell.logs import validate_log
 from foretell.learners import Counting, Source
 from foretell.models import default_models, parse_model
@@ -274,8 +274,8 @@ def test_near_deterministic_guesser_reports_inv_temp_at_its_bound(tide):
 
 
 def test_a_fit_the_newton_method_cannot_finish_falls_back_to_nelder_mead(lantern, monkeypatch):
-    import foretell.optimise
-    monkeypatch.setattr(foretell.optimise, "MAX_ITER", 1)
+    import foretell.fitting.optimise
+    monkeypatch.setattr(foretell.fitting.optimise, "MAX_ITER", 1)
     log = simulated_log(lantern, Counting(depth=1), 2.0, 0.05, 200, np.random.default_rng(21))
     res = fit_participant(validate_log(log, lantern), lantern, ["count-1"], n_starts=1, cv=False,
                           per_block=False)

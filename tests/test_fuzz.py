@@ -13,7 +13,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from foretell.cli import main
+from foretell.cli.main import main
 
 TASKS = Path(__file__).resolve().parents[1] / "tasks"
 HEADER = ["participant", "group", "block", "trial", "stimulus", "response", "rt"]

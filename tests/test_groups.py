@@ -10,10 +10,10 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from foretell.bayes import Gate
+from foretell.hierarchical.sampling import Gate
 from foretell.errors import UsageError
-from foretell.fitting import fit_participants
-from foretell.groups import (
+from foretell.fitting.participants import fit_participants
+from foretell.steps.groups import (
     GroupModelSpec,
     build_model,
     compare_groups,
@@ -304,7 +304,7 @@ def test_group_model_finds_a_late_difference_and_no_null_difference():
                                                      "C": [0, 0, 1.0, 1.0]})
     data = model_data(curves, "optimal_rate", ["A", "B", "C"])
     # A short run: the estimates are checked here, with limits loosened for
-    # 2 chains x 500 draws; the gate itself is foretell.bayes's.
+    # 2 chains x 500 draws; the gate itself is foretell.hierarchical.sampling's.
     short = Gate(rhat_max=1.05, ess_bulk_per_chain=50, pareto_k_max=math.inf)
     fit = fit_group_model(data, [("B", "A"), ("C", "A")], draws=500, tune=500, chains=2, seed=3,
                           parameterisation="centred", gate=short)

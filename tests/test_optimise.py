@@ -1,4 +1,4 @@
-"""Tests of foretell.optimise: the batched choice-rule sums, projected Newton and Brent's method."""
+"""Tests of foretell.fitting.optimise: the batched choice-rule sums, projected Newton and Brent's method."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pytest
 from scipy.optimize import approx_fprime, minimize, minimize_scalar
 
 from foretell.choice import choice_terms
-from foretell.optimise import Batch, ChoiceSpace, brent, choice_sums, newton
+from foretell.fitting.optimise import Batch, ChoiceSpace, brent, choice_sums, newton
 
 
 def _data(seed: int, n: int = 300, m: int = 3):

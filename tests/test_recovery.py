@@ -1,4 +1,4 @@
-"""Tests of parameter and model recovery (foretell.recovery) and its figures (foretell.figures)."""
+"""Tests of parameter and model recovery (foretell.steps.design) and its figures (foretell.plots)."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from matplotlib.figure import Figure
 from scipy.stats import binomtest
 
 from foretell.errors import InputError, UsageError
-from foretell.recovery import (DEFAULT_RANGES, GROUP_RESAMPLES, TIE_BIC, _answer, _confusion, _credit,
+from foretell.steps.design import (DEFAULT_RANGES, GROUP_RESAMPLES, TIE_BIC, _answer, _confusion, _credit,
                                _Drawer, _simulate, clopper_pearson, recover)
 from foretell.tasks import Task
 
@@ -269,7 +269,7 @@ def test_figures(twins) -> None:
 def test_palette_colours_stay_apart_and_labels_stay_readable():
     # Okabe & Ito (2008) colours, then their tints: sixteen distinct colours; text contrast by the
     # WCAG 2.0 relative-luminance rule (W3C, 2008): black on yellow, white on black.
-    from foretell.figures import colour, text_colour
+    from foretell.plots.common import colour, text_colour
 
     assert len({colour(i) for i in range(16)}) == 16
     assert text_colour("#000000") == "white" and text_colour("#F0E442") == "black"

@@ -15,7 +15,7 @@ import foretell
 from foretell.errors import UsageError
 from foretell.logs import log_summary, validate_log
 from foretell.outputs import write_outputs
-from foretell.report import build_report, status_shares, tree_figure
+from foretell.report.build import build_report, status_shares, tree_figure
 from foretell.simulate import simulate_participants
 from foretell.summaries import verdict
 from foretell.text import number
@@ -26,9 +26,9 @@ MODELS = ["count-0", "count-1", "count-2"]
 
 def make_study(out: Path, *, groups: bool = True, rt: bool = True, recovery: bool = True) -> Path:
     """Write a tiny analysis folder (validation/, fit/, and optionally rt/, groups/, recovery/) and return it."""
-    from foretell.groups import compare_groups
-    from foretell.recovery import recover
-    from foretell.rt import analyse_rt
+    from foretell.steps.groups import compare_groups
+    from foretell.steps.design import recover
+    from foretell.steps.measures import analyse_rt
 
     task = foretell.load_task("tide-gauge")
     frame, _ = simulate_participants(task, 6, 2, groups={"rested": ["count-0", "count-1"],

@@ -28,7 +28,7 @@ from urllib.parse import urlsplit
 
 import pytest
 
-from foretell.report import build_report
+from foretell.report.build import build_report
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 pytestmark = pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (Debian: apt-get install "

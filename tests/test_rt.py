@@ -12,11 +12,11 @@ import pytest
 import statsmodels.api as sm
 from scipy.stats import linregress, norm
 
-from foretell.bayes import Gate, choose_by_strength, diagnose, exact_units, pareto_k, psis_loo
+from foretell.hierarchical.sampling import Gate, choose_by_strength, diagnose, exact_units, pareto_k, psis_loo
 from foretell.errors import UsageError
 from foretell.learners import Counting
 from foretell.logs import validate_log
-from foretell.rt import (UnitStats, _Pooled, analyse_rt, gaussian_unit_loglik, huber, leave_out,
+from foretell.steps.measures import (UnitStats, _Pooled, analyse_rt, gaussian_unit_loglik, huber, leave_out,
                          newey_west_lags, ols, unit_statistics)
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.tasks import Task
@@ -337,7 +337,7 @@ def test_leaving_a_unit_out_equals_pooling_the_other_units():
     y = -0.6 + 0.2 * x_raw + 0.2 * rng.standard_normal(n.sum())
     unit = np.repeat(np.arange(len(n)), n)
 
-    def pooled_from(keep: np.ndarray) -> _Pooled:  # as foretell.rt._pool builds it: centred over kept trials
+    def pooled_from(keep: np.ndarray) -> _Pooled:  # as foretell.steps.measures._pool builds it: centred over kept trials
         at = np.isin(unit, keep)
         x = x_raw[at] - x_raw[at].mean()
         t = order[unit[at]] - order[unit[at]].mean()

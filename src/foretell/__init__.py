@@ -18,15 +18,15 @@ def load_log(*args, **kwargs):
 
 
 def analyze(*args, **kwargs):
-    """Return (and write) the whole analysis of a study; see :func:`foretell.pipeline.analyze`."""
-    from .pipeline import analyze as _analyze
+    """Return (and write) the whole analysis of a study; see :func:`foretell.steps.whole.analyze`."""
+    from .steps.whole import analyze as _analyze
 
     return _analyze(*args, **kwargs)
 
 
 def fit(*args, **kwargs):
-    """Return the fits and comparisons of a response log; see :func:`foretell.analysis.fit`."""
-    from .analysis import fit as _fit
+    """Return the fits and comparisons of a response log; see :func:`foretell.steps.guesses.fit`."""
+    from .steps.guesses import fit as _fit
 
     return _fit(*args, **kwargs)
 

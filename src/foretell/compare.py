@@ -5,7 +5,7 @@ Tidy wrappers over the fitter's ``fits`` and ``blocks`` tables:
 :func:`selection`, :func:`selection_blocks`, :func:`families`,
 :func:`families_blocks`; :func:`lookalikes` finds models that cannot be told
 apart; :func:`default_families`. The numerical kernels live in
-:mod:`foretell.bms`, the plain-words summary in :mod:`foretell.summaries`.
+:mod:`foretell.stats.selection`, the plain-words summary in :mod:`foretell.summaries`.
 
 Evidence
 --------
@@ -40,7 +40,7 @@ pass no sets.
 References
 ----------
 Stephan et al. (2009), Penny et al. (2010), Rigoux et al. (2014): see
-:mod:`foretell.bms`. Kass, R. E., & Raftery, A. E. (1995). Bayes factors.
+:mod:`foretell.stats.selection`. Kass, R. E., & Raftery, A. E. (1995). Bayes factors.
 JASA 90, 773-795. Raftery, A. E. (1995). Bayesian model selection in social
 research. Sociological Methodology 25, 111-163.
 """
@@ -54,7 +54,7 @@ from typing import Callable, Iterator, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from .bms import FamilyBMSResult, family_bms, rfx_bms, rfx_gibbs
+from .stats.selection import FamilyBMSResult, family_bms, rfx_bms, rfx_gibbs
 from .errors import UsageError
 from .labels import ALL, block_label
 from .models import ModelSpec

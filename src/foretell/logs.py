@@ -163,7 +163,7 @@ def validate_log(frame: pd.DataFrame, task: Task, source: str = "<frame>",
     absent rt is no RT. Ids and labels may not hold control characters.
 
     ``measures`` names other numeric per-trial columns to carry over (e.g. a
-    single-trial EEG amplitude, for :func:`foretell.rt.analyse_rt`); their
+    single-trial EEG amplitude, for :func:`foretell.steps.measures.analyse_rt`); their
     cells must be numbers or empty (NaN).
 
     The result's ``frame`` is described in :class:`ValidatedLog`; other

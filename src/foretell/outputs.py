@@ -26,15 +26,55 @@ import shutil
 import tempfile
 from collections.abc import Iterable, Mapping
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pandas as pd
 
 from .errors import OutputError
 
+if TYPE_CHECKING:
+    from .results import Result
+
 MANIFEST = "manifest.json"
 TOOL = "foretell"
 PACKAGES = ("numpy", "scipy", "pandas", "scikit-learn", "statsmodels", "pymc", "arviz", "joblib",
             "matplotlib")
+
+
+def write(out_dir: str | Path, result: "Result", *, inputs: Iterable[str | Path] = (), force: bool = False,
+          manifest: Mapping[str, object] | None = None) -> Path:
+    """Return ``out_dir`` after writing any step's result there, atomically, with its manifest.
+
+    Parameters
+    ----------
+    out_dir : str or pathlib.Path
+        The folder to write (see the module docstring for what is refused).
+    result : foretell.results.Result
+        Its tables are written as CSV, its texts as they are, its figures as
+        PNG under ``figures/`` (each drawn once, here) and its blobs as bytes.
+    inputs : iterable of paths
+        Files and folders the run read: the output may not be, hold or lie
+        inside any of them.
+    force : bool, default False
+        Replace a folder foretell wrote before.
+    manifest : mapping, optional
+        Provenance (:func:`provenance`) merged into the manifest, which also
+        records the step, its settings and notes.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    from .plots import figure_png
+
+    extra = dict(result.blobs())
+    for name, draw in result.figure_makers().items():
+        figure = draw()
+        extra[f"figures/{name}.png"] = figure_png(figure)
+    record = {**dict(manifest or {}), "step": result.step, "settings": dict(result.settings),
+              "notes": list(result.notes)}
+    return write_outputs(out_dir, result.tables(), texts=result.texts(), manifest=record, inputs=inputs,
+                         force=force, extra=extra)
 
 
 def write_outputs(out_dir: str | Path, tables: Mapping[str, pd.DataFrame], *,

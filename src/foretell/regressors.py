@@ -104,7 +104,7 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     whose leak is free and given neither in ``fits`` nor in ``fixed`` gets,
     per participant, the leak of ``leak_grid`` that maximises
     ``score`` (profile likelihood on the grid; ``params_from`` "profile");
-    :func:`foretell.rt.analyse_rt` passes the likelihood of its model of the
+    :func:`foretell.steps.measures.analyse_rt` passes the likelihood of its model of the
     measure. Rows: participant by participant, model by model, trials in log
     order.
     """
@@ -124,7 +124,7 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
                 if score is None:
                     raise UsageError(
                         f"model {spec.model_id!r} needs a leak for participant {pid}: give it in "
-                        "fits= or fixed={'leak': ...}, or use foretell.rt.analyse_rt, which "
+                        "fits= or fixed={'leak': ...}, or use foretell.steps.measures.analyse_rt, which "
                         "chooses it on the measure")
                 candidates = [_participant_columns(spec.learner(**values, leak=leak), sessions,
                                                    task, guessing) for leak in grid]

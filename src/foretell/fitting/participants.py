@@ -16,7 +16,7 @@ learner still running over the whole session). A learner's predictions are
 computed once per participant (and once per learner-parameter value tried),
 and the rows of many participants are solved together by a bounded projected
 Newton method on inv_temp and lapse with analytic gradients and Hessians
-(:mod:`foretell.optimise`): the whole-session fit from the usual start,
+(:mod:`foretell.fitting.optimise`): the whole-session fit from the usual start,
 the same with each free choice parameter at each of its bounds in turn
 (the likelihood can have modes at the ends of the ranges) and
 ``n_starts - 1`` seeded uniform draws; the folds from the whole-session
@@ -63,7 +63,7 @@ from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import LogError, UsageError
 from foretell.logs import ValidatedLog, unscorable
 from foretell.models import ModelSpec, model_specs
-from foretell.optimise import BOUND_TOL, Batch, ChoiceSpace, brent, newton
+from foretell.fitting.optimise import BOUND_TOL, Batch, ChoiceSpace, brent, newton
 from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
 
@@ -323,7 +323,7 @@ def _search(grids: Sequence[np.ndarray], on_grid: bool, low: np.ndarray, high: n
     a local search from the best of theta0 and ``extra``); then, from the
     best point (and, with two or more coordinates, from each of the next
     _LOCAL_STARTS best local minima of the grid, so that a second basin is
-    explored too), Brent's method (:func:`foretell.optimise.brent`) along each
+    explored too), Brent's method (:func:`foretell.fitting.optimise.brent`) along each
     coordinate in turn between the grid points around the current point,
     until a cycle gains less than _CYCLE_GAIN.
     """

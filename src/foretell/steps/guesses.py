@@ -8,18 +8,18 @@ from typing import Iterable, Mapping, Sequence
 
 import pandas as pd
 
-from . import compare
-from .contexts import DEFAULT_REPLICATES, context_agreement, context_report
-from .fitting import fit_participants
-from .errors import UsageError
-from .labels import ALL
-from .logs import ValidatedLog, load_log, validate_log
-from .learners.mixture import MAX_TREE_DEPTH
-from .models import ModelSpec, model_specs
-from .params import PARAMS
-from .summaries import convergence_text, summary_text
-from .text import plural
-from .tasks import Task, load_task
+from .. import compare
+from ..contexts import DEFAULT_REPLICATES, context_agreement, context_report
+from ..fitting.participants import fit_participants
+from ..errors import UsageError
+from ..labels import ALL
+from ..logs import ValidatedLog, load_log, validate_log
+from ..learners.mixture import MAX_TREE_DEPTH
+from ..models import ModelSpec, model_specs
+from ..params import PARAMS
+from ..summaries import convergence_text, summary_text
+from ..text import plural
+from ..tasks import Task, load_task
 
 
 @dataclass(frozen=True)
@@ -27,7 +27,7 @@ class FitResult:
     """Every table of a study's analysis, as tidy DataFrames (see README, "Outputs").
 
     ``fits``, ``blocks``, ``predictions``: the per-participant fits
-    (:class:`foretell.fitting.FitTables`); ``winners``: best model per
+    (:class:`foretell.fitting.participants.FitTables`); ``winners``: best model per
     participant, overall (block ``all``) and per block; ``selection``,
     ``selection_blocks``, ``families``, ``families_blocks``: random-effects
     model selection over models and over model families, overall and per block;

@@ -38,7 +38,7 @@ import numpy as np
 from scipy import integrate, stats
 from scipy.special import digamma, gammainc, gammaln, logsumexp, softmax, xlogy
 
-from .errors import UsageError
+from ..errors import UsageError
 
 _CONSTANT = 1e-20
 """Within-chain variance below which a monitored quantity counts as constant (e.g. a family of every model)."""

@@ -7,7 +7,7 @@ Collins, 2019, "Ten simple rules for the computational modeling of
 behavioral data", eLife 8:e49547, rules 5-6). :func:`recover` simulates
 participants from every candidate model (:mod:`foretell.simulate`) at each
 listed trial count, fits every candidate with the analysis's own fitter
-(:func:`foretell.fitting.fit_participants`) and reports the confusion
+(:func:`foretell.fitting.participants.fit_participants`) and reports the confusion
 matrix, its inversion, true against fitted parameters and a group-level
 check with random-effects model selection.
 
@@ -32,14 +32,14 @@ from scipy import stats
 from tqdm import tqdm
 
 from foretell.errors import InputError, Problem, UsageError
-from foretell.fitting import fit_participants
+from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
 from foretell.models import ModelSpec, model_specs, normalise_model_id
 from foretell.params import PARAMS
 from foretell.simulate import ParticipantSpec, simulate_participant
 from foretell.tasks import Task
 
-from foretell.bms import rfx_bms
+from foretell.stats.selection import rfx_bms
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -122,7 +122,7 @@ def recover(task: Task, models: Sequence[str], *, n_participants: int, trials: S
     (a fits table with participant, model, inv_temp, lapse, converged, and
     leak for leaky models; models without fits fall back to the ranges, and
     the notes say so). Every model is fitted to every participant with
-    :func:`foretell.fitting.fit_participants` (no cross-validation, no block
+    :func:`foretell.fitting.participants.fit_participants` (no cross-validation, no block
     refits) and the best model by BIC is recovered; models within
     :data:`TIE_BIC` of the best share the credit equally; fits that did not
     converge are left out as in the analysis's winners. Look-alike models

@@ -20,7 +20,7 @@ import pandas as pd
 from joblib import Parallel, delayed
 from scipy.stats import norm
 
-from foretell.bayes import (PARAMETERISATIONS, Diagnostics, Gate, choose_by_strength, compare_loo,
+from foretell.hierarchical.sampling import (PARAMETERISATIONS, Diagnostics, Gate, choose_by_strength, compare_loo,
                             diagnose, exact_units, psis_loo, sample)
 from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import UsageError
@@ -281,7 +281,7 @@ def analyse_rt(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     With ``bayes``, one hierarchical model per learner model (see
     :func:`hierarchical_model`), sampled with ``chains`` x ``draws`` after
     ``tune`` (``n_jobs`` chains in parallel), checked by ``gate`` and compared
-    by PSIS-LOO over participant x block units (:func:`foretell.bayes.compare_loo`).
+    by PSIS-LOO over participant x block units (:func:`foretell.hierarchical.sampling.compare_loo`).
     Units whose Pareto k exceeds ``gate.pareto_k_max`` are left out one at a
     time and the model refitted without them (exact leave-one-out; at most
     ``refits`` per model, default :data:`LOO_REFITS`, else the gate fails on
@@ -780,7 +780,7 @@ def parameterisations(pooled: _Pooled, requested: Mapping[str, str]
     """Return ({parameter: form}, {parameter: reason}) for the intercepts and the slopes.
 
     "auto" decides per parameter from the strength of the data
-    (:func:`foretell.bayes.choose_by_strength` on :func:`participant_estimates`).
+    (:func:`foretell.hierarchical.sampling.choose_by_strength` on :func:`participant_estimates`).
     """
     est, se = participant_estimates(pooled)
     forms, reasons = {}, {}

@@ -18,8 +18,8 @@ group (pairwise contrasts "B-A" = group B minus reference A):
   random intercepts and random block slopes, so the group x block contrast is
   not anti-conservative (Barr et al., 2013); centred or non-centred
   participant intercepts by data strength (Betancourt & Girolami, 2015; see
-  :func:`foretell.bayes.choose_parameterisation`). Posteriors pass the shared
-  diagnostics gate of :mod:`foretell.bayes` or are "not called";
+  :func:`foretell.hierarchical.sampling.choose_parameterisation`). Posteriors pass the shared
+  diagnostics gate of :mod:`foretell.hierarchical.sampling` or are "not called";
 - a permutation test of the group difference per block (Fisher-Pitman, via
   :func:`scipy.stats.permutation_test`) with Holm's (1979) correction across
   blocks x contrasts per metric;
@@ -61,20 +61,20 @@ from scipy import stats
 from scipy.special import expit, logsumexp
 from statsmodels.stats.multitest import multipletests
 
-from foretell.analysis import response_tree_depth
-from foretell.bayes import Diagnostics, Gate, choose_parameterisation, diagnose, quiet, sample
-from foretell.bms import rfx_bms
+from foretell.steps.guesses import response_tree_depth
+from foretell.hierarchical.sampling import Diagnostics, Gate, choose_parameterisation, diagnose, quiet, sample
+from foretell.stats.selection import rfx_bms
 from foretell.compare import default_families, log_evidence_table, winners as find_winners
 from foretell.contexts import context_report
 from foretell.errors import UsageError
-from foretell.figures import colour, new_figure
+from foretell.plots.common import colour, new_figure
 from foretell.labels import ALL, ROOT, block_label
 from foretell.learners import Counting
 from foretell.logs import ValidatedLog
 from foretell.params import PARAMS
 from foretell.tasks import Task
 
-import arviz as az  # noqa: E402  (imported quietly by foretell.bayes first)
+import arviz as az  # noqa: E402  (imported quietly by foretell.hierarchical.sampling first)
 
 HDI_PROB = 0.94
 """Probability mass of the reported highest density intervals (ArviZ's default; Kruschke, 2015)."""
@@ -569,7 +569,7 @@ def groups_differ(log_evidence: np.ndarray, reference_evidence: np.ndarray) -> t
     Rigoux et al. (2014): under "differ" each group has its own frequencies,
     log p(y | differ) = F(group) + F(reference); under "same" one set of
     frequencies generates both, log p(y | same) = F(pooled); F is the free
-    energy of random-effects BMS (:func:`foretell.bms.rfx_bms`). With equal
+    energy of random-effects BMS (:func:`foretell.stats.selection.rfx_bms`). With equal
     prior odds, P(differ | y) = 1 / (1 + exp(F(pooled) - F(group) - F(reference))).
     """
     a, b = np.asarray(log_evidence, float), np.asarray(reference_evidence, float)
@@ -835,9 +835,9 @@ def fit_group_model(data: GroupModelData, contrasts: Sequence[tuple[str, str]], 
     for a continuous metric. Effects: per contrast x block the posterior of
     the difference group - reference on the comparison scale (rate
     difference; log seconds for median RT), its HDI and P(difference > 0).
-    The posterior passes ``gate`` (:func:`foretell.bayes.diagnose`) or every
+    The posterior passes ``gate`` (:func:`foretell.hierarchical.sampling.diagnose`) or every
     summary is NaN with ``called`` False. The parameterisation follows the
-    participants' observations (:func:`foretell.bayes.choose_parameterisation`);
+    participants' observations (:func:`foretell.hierarchical.sampling.choose_parameterisation`);
     ``cores`` chains run in parallel.
     """
     how, reason = choose_parameterisation(data.obs_per_participant(), parameterisation)
@@ -1056,7 +1056,7 @@ def compare_groups(log: ValidatedLog, task: Task, fit_result_or_tables: object =
     """Return the learning curves and the group comparisons of a study (:class:`GroupResult`).
 
     ``log`` a validated log; ``fit_result_or_tables`` the result of
-    :func:`foretell.fit`, the fitter's :class:`foretell.fitting.FitTables`, a
+    :func:`foretell.fit`, the fitter's :class:`foretell.fitting.participants.FitTables`, a
     mapping of tables (fits, blocks, optionally winners, contexts) or None
     (then no gain_bits, inv_temp, model or parameter comparison). Groups are
     compared pairwise with ``reference`` (default: the first group in sorted

@@ -10,8 +10,8 @@ from dataclasses import replace
 from pathlib import Path
 from typing import Callable, Sequence
 
-from . import __version__
-from .errors import ForetellError, InputError, UsageError, printable
+from .. import __version__
+from ..errors import ForetellError, InputError, UsageError, printable
 
 EXAMPLES = """\
 examples:
@@ -131,7 +131,7 @@ def _add_backend_options(p: argparse.ArgumentParser) -> None:
 
 
 def _models_help() -> str:
-    from .params import describe_params
+    from ..params import describe_params
 
     return ("model ids:\n"
             "  count-K        Dirichlet counts of what followed the last K symbols (K = 0, 1, ...)\n"
@@ -303,8 +303,8 @@ def _load(args: argparse.Namespace, measures: Sequence[str] = (), check_task=Non
 
     ``check_task`` (a function of the task) runs before the log is read.
     """
-    from .logs import RTScreen, load_log
-    from .tasks import load_task
+    from ..logs import RTScreen, load_log
+    from ..tasks import load_task
 
     task = load_task(args.task)
     if check_task is not None:
@@ -326,15 +326,15 @@ def _say(line: str) -> None:
 
 
 def _cmd_task(args: argparse.Namespace) -> int:
-    from .tasks import load_task
+    from ..tasks import load_task
 
     print(load_task(args.task).describe())
     return 0
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .logs import log_summary, unscorable
-    from .models import default_warmup
+    from ..logs import log_summary, unscorable
+    from ..models import default_warmup
 
     task, log = _load(args)
     print(log_summary(log).to_string(index=False, na_rep=""))
@@ -347,8 +347,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 def _run_fit(task, log, args: argparse.Namespace, out: str | None, inputs: Sequence[str]):
     """Return the analysis of ``log`` after printing its summary (and writing it to ``out``)."""
-    from .analysis import fit
-    from .outputs import check_output_dir, provenance, write_outputs
+    from ..steps.guesses import fit
+    from ..outputs import check_output_dir, provenance, write_outputs
 
     if out is not None:
         check_output_dir(out, inputs=inputs, force=args.force)
@@ -376,9 +376,9 @@ def _options(args: argparse.Namespace) -> dict[str, object]:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from .cluster import job_backend
+    from ..cluster import job_backend
 
-    from .analysis import check_guess_design
+    from ..steps.guesses import check_guess_design
 
     task, log = _load(args, check_task=check_guess_design)
     with job_backend(args.backend, args.scheduler):
@@ -404,11 +404,11 @@ def _trial_counts(text: str) -> list[int]:
 
 
 def _cmd_recover(args: argparse.Namespace) -> int:
-    from .cluster import job_backend
-    from .figures import figure_png
-    from .outputs import check_output_dir, provenance, write_outputs
-    from .recovery import recover
-    from .tasks import load_task
+    from ..cluster import job_backend
+    from ..plots.common import figure_png
+    from ..outputs import check_output_dir, provenance, write_outputs
+    from ..steps.design import recover
+    from ..tasks import load_task
 
     task = load_task(args.task)
     fits_path = Path(args.from_fits) / "fits.csv" if args.from_fits else None
@@ -436,9 +436,9 @@ def _cmd_recover(args: argparse.Namespace) -> int:
 
 
 def _cmd_rt(args: argparse.Namespace) -> int:
-    from .cluster import job_backend
-    from .outputs import check_output_dir, netcdf_bytes, provenance, write_outputs
-    from .rt import analyse_rt
+    from ..cluster import job_backend
+    from ..outputs import check_output_dir, netcdf_bytes, provenance, write_outputs
+    from ..steps.measures import analyse_rt
 
     measures = [] if args.measure == "rt" else [args.measure]
     task, log = _load(args, measures=measures)
@@ -466,9 +466,9 @@ def _cmd_rt(args: argparse.Namespace) -> int:
 
 
 def _cmd_groups(args: argparse.Namespace) -> int:
-    from .figures import figure_png
-    from .groups import compare_groups
-    from .outputs import check_output_dir, provenance, write_outputs
+    from ..plots.common import figure_png
+    from ..steps.groups import compare_groups
+    from ..outputs import check_output_dir, provenance, write_outputs
 
     task, log = _load(args)
     fit_dir = Path(args.fits) if args.fits else None
@@ -479,7 +479,7 @@ def _cmd_groups(args: argparse.Namespace) -> int:
     if fit_dir is not None:
         fitted = {n: _read_fits(fit_dir / f"{n}.csv", "--fits") for n in names}
     else:
-        from .analysis import fit
+        from ..steps.guesses import fit
 
         fitted = fit(log, task, _csv_list(args.models), seed=args.seed, n_jobs=args.jobs,
                      progress=sys.stderr.isatty())
@@ -501,9 +501,9 @@ def _cmd_groups(args: argparse.Namespace) -> int:
 
 
 def _cmd_events(args: argparse.Namespace) -> int:
-    from .events import events_tables, sidecar_json, to_tsv
-    from .outputs import check_output_dir, provenance, write_outputs
-    from .pipeline import event_models
+    from ..steps.events import events_tables, sidecar_json, to_tsv
+    from ..outputs import check_output_dir, provenance, write_outputs
+    from ..steps.whole import event_models
 
     task, log = _load(args)
     fits_path = Path(args.fits) / "fits.csv" if args.fits else None
@@ -537,9 +537,9 @@ def _read_fits(path: Path, option: str = "--from-fits"):
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import DEMO_RT_MODELS, demo_log, demo_task, demo_truth, recovery_text
-    from .logs import validate_log
-    from .pipeline import DEMO_CHAINS, DEMO_DRAWS, analyze
+    from ..demo import DEMO_RT_MODELS, demo_log, demo_task, demo_truth, recovery_text
+    from ..logs import validate_log
+    from ..steps.whole import DEMO_CHAINS, DEMO_DRAWS, analyze
 
     task = demo_task()
     _say(f"demo study: task {task.name!r} ({', '.join(task.symbols)}); 28 simulated participants "
@@ -557,8 +557,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_analyze(args: argparse.Namespace) -> int:
-    from .cluster import job_backend
-    from .pipeline import analyze
+    from ..cluster import job_backend
+    from ..steps.whole import analyze
 
     task, log = _load(args)
     inputs = [args.log, *_task_inputs(task)]
@@ -576,7 +576,7 @@ def _cmd_analyze(args: argparse.Namespace) -> int:
 
 def _run_record(args: argparse.Namespace, inputs: Sequence[str]) -> dict[str, object]:
     """Return the manifest's provenance of this command (timings are added by the step runner)."""
-    from .outputs import provenance
+    from ..outputs import provenance
 
     return provenance(args.command, _options(args), inputs)
 

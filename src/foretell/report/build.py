@@ -30,7 +30,7 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from foretell.errors import InputError, Problem, UsageError
-from foretell.figures import HEATMAP, colour, confusion_heatmap, figure_png, new_figure, text_colour
+from foretell.plots.common import HEATMAP, colour, confusion_heatmap, figure_png, new_figure, text_colour
 from foretell.labels import ALL, ROOT
 from foretell.summaries import CLEAR_PXP, verdict
 from foretell.text import number, plural
@@ -104,7 +104,7 @@ def build_report(out_dir: str | Path, *, provisional: bool = False,
     images = {name: "data:image/png;base64," + base64.b64encode(data).decode("ascii")
               for name, data in pngs.items()}
     manifest = folder.manifest()
-    env = Environment(loader=PackageLoader("foretell", "templates"), autoescape=select_autoescape(["j2", "html"]),
+    env = Environment(loader=PackageLoader("foretell.report", "templates"), autoescape=select_autoescape(["j2", "html"]),
                       keep_trailing_newline=True)
     html = env.get_template("report.html.j2").render(
         title=title or "foretell analysis report", provisional=provisional, sections=sections,
@@ -232,7 +232,7 @@ def _curves_section(folder: _Folder, figures: dict[str, Figure], provisional: bo
     if not folder.has("groups"):
         return _absent("curves", heading, "No groups/ folder: the log has no groups to compare, "
                                           "or the group step was not run.")
-    from foretell.groups import METRICS, context_figure, curve_figure  # imports PyMC: only when needed
+    from foretell.steps.groups import METRICS, context_figure, curve_figure  # imports PyMC: only when needed
 
     group_curves = folder.table("groups/group_curves")
     diagnostics = folder.table("groups/group_diagnostics")

@@ -19,11 +19,11 @@ from pathlib import Path
 import pandas as pd
 from tqdm import tqdm
 
-from .errors import UsageError
-from .logs import ValidatedLog, load_log, log_summary, unscorable, validate_log
-from .models import default_warmup
-from .outputs import netcdf_bytes, write_outputs
-from .tasks import Task, load_task
+from ..errors import UsageError
+from ..logs import ValidatedLog, load_log, log_summary, unscorable, validate_log
+from ..models import default_warmup
+from ..outputs import netcdf_bytes, write_outputs
+from ..tasks import Task, load_task
 
 STEPS = ("fit", "rt", "groups", "events", "report")
 """The steps that can be skipped (validation always runs: every other step needs a checked log)."""
@@ -73,18 +73,18 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
     Steps, each with a progress bar: validation (summary, warnings,
     participants with nothing to fit), fit and comparison
     (:func:`foretell.fit` with ``models`` and ``free``), reaction times when
-    the log has usable ones (:func:`foretell.rt.analyse_rt` with
+    the log has usable ones (:func:`foretell.steps.measures.analyse_rt` with
     ``rt_models``, default the fitted models, and the fitted learner
     parameters), group curves and contrasts when the log has two or more
-    groups (:func:`foretell.groups.compare_groups`), BIDS events
-    (:func:`foretell.events.events_tables`) and the report
-    (:func:`foretell.report.build_report`). ``skip`` names steps of
+    groups (:func:`foretell.steps.groups.compare_groups`), BIDS events
+    (:func:`foretell.steps.events.events_tables`) and the report
+    (:func:`foretell.report.build.build_report`). ``skip`` names steps of
     :data:`STEPS` to leave out. ``recovery`` is a ``foretell recover`` output
     folder whose tables are copied under ``recovery/`` and shown in the
     report. ``bayes`` runs the hierarchical Bayesian models of the RT and
     group steps (without it: summed BIC and permutation tests only);
     ``draws``, ``chains``, ``tune`` go to those models, ``refits`` (exact
-    leave-one-out refits per RT model) to :func:`foretell.rt.analyse_rt`;
+    leave-one-out refits per RT model) to :func:`foretell.steps.measures.analyse_rt`;
     ``provisional`` marks their comparisons provisional in the report (demo
     mode). ``inputs`` are files whose SHA-256 the manifest records and that
     ``out`` may not hold.
@@ -100,7 +100,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
     elif not isinstance(log, ValidatedLog):
         log = load_log(log, task)
     if out is not None:
-        from .outputs import check_output_dir
+        from ..outputs import check_output_dir
 
         check_output_dir(out, inputs=inputs, force=force)
     recovery_tables = _read_recovery(Path(recovery)) if recovery is not None else {}
@@ -129,7 +129,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
                 if task.response != "guess":
                     notes.append(f"fit: not applicable to a {task.response} design")
                 else:
-                    from .analysis import fit
+                    from .guesses import fit
 
                     result = fit(log, task, models, free=free, seed=seed, n_jobs=n_jobs, progress=False)
                     results["fit"] = result
@@ -140,7 +140,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
                 if not has_rt:
                     notes.append("reaction times: none usable in this log; step skipped")
                 else:
-                    from .rt import analyse_rt
+                    from .measures import analyse_rt
 
                     fitted = results.get("fit")
                     result = analyse_rt(log, task, rt_models or _fitted_models(fitted, models),
@@ -162,7 +162,7 @@ def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Pa
                                             cores=max(1, min(chains, n_jobs if n_jobs > 0 else 2)))
                     results["groups"] = result
                     tables |= {f"groups/{k}": v for k, v in result.tables().items()}
-                    from .figures import figure_png
+                    from ..plots.common import figure_png
 
                     files |= {f"groups/figures/{n}.png": figure_png(f) for n, f in result.figures.items()}
                     notes += list(result.notes)
@@ -216,7 +216,7 @@ def event_models(fits: pd.DataFrame | None, task: Task, models: Sequence[str] | 
     set; without fits only models whose learner needs no fitted parameter
     (no free leak): their per-trial quantities would need values nobody fitted.
     """
-    from .models import default_models, parse_model
+    from ..models import default_models, parse_model
 
     if models:
         return list(models)
@@ -228,7 +228,7 @@ def event_models(fits: pd.DataFrame | None, task: Task, models: Sequence[str] | 
 def _report(tables: Mapping[str, pd.DataFrame], texts: Mapping[str, str], files: Mapping[str, bytes], *,
             provisional: bool, settings: Mapping[str, object]) -> tuple[str, dict[str, bytes]]:
     """Return the report's HTML and figures, built from the tables as written (CSV round trip)."""
-    from .report import build_report
+    from ..report.build import build_report
 
     with tempfile.TemporaryDirectory() as folder:
         stage = Path(folder) / "stage"
@@ -240,7 +240,7 @@ def _report(tables: Mapping[str, pd.DataFrame], texts: Mapping[str, str], files:
 
 def _read_recovery(folder: Path) -> dict[str, object]:
     """Return the tables (and answer text) of a ``foretell recover`` output folder."""
-    from .errors import InputError
+    from ..errors import InputError
 
     names = ("confusion", "inversion", "params", "recovery_summary", "group_check")
     missing = [n for n in names if not (folder / f"{n}.csv").is_file()]

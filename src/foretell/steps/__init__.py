@@ -1,0 +1,1 @@
+"""The analysis steps: each holds its metrics and orchestration and returns a Result."""
