@@ -42,6 +42,7 @@ from foretell.errors import LogError, UsageError
 from foretell.models import ModelSpec, model_specs
 from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
+from foretell.validation import child_rng
 
 _LOG_TINY = math.log(1e-300)  # floor of log predictions (zero probabilities), as in foretell.choice
 _FD_STEP = 1e-5  # finite-difference step (optimiser coordinates) for learner parameters
@@ -540,9 +541,9 @@ def fit_participants(log: pd.DataFrame, task: Task, models: Sequence[str | Model
     """Return the fit tables (see :class:`FitTables`) of every participant of a log.
 
     Participants are fitted independently, in parallel through joblib
-    (``n_jobs``); participant i draws its random starts from the i-th child of
-    ``numpy.random.SeedSequence(seed)`` (participants in order of first
-    appearance), so the tables do not depend on ``n_jobs``. ``progress``
+    (``n_jobs``); participant p draws its random starts from
+    ``foretell.validation.child_rng(seed, p)``, so the tables do not depend on
+    ``n_jobs`` or on the order of participants. ``progress``
     prints a progress line on stderr (None: only when stderr is a terminal).
     Other options as :func:`fit_participant`.
     """
@@ -552,10 +553,8 @@ def fit_participants(log: pd.DataFrame, task: Task, models: Sequence[str | Model
         raise UsageError("n_jobs must be a positive count or negative (-1: all cores); got 0")
     specs = model_specs(models, task, options.free)
     data = encode_log(log, task)
-    parts = [part for _, part in data.groupby("participant", sort=False)]
-    seeds = np.random.SeedSequence(seed).spawn(len(parts))
-    jobs = (delayed(_fit_one)(part, task, specs, options, np.random.default_rng(s))
-            for part, s in zip(parts, seeds))
+    parts = list(data.groupby("participant", sort=False))
+    jobs = (delayed(_fit_one)(part, task, specs, options, child_rng(seed, pid)) for pid, part in parts)
     results = Parallel(n_jobs=n_jobs, return_as="generator")(jobs)
     show = sys.stderr.isatty() if progress is None else progress
     done = list(_progress(results, len(parts)) if show else results)

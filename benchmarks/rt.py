@@ -1,26 +1,33 @@
-"""Benchmark of the RT analyses: per-participant fits for 10 models, and one hierarchical model.
+"""Benchmark of the RT analyses: speed of the per-participant path and the hierarchical models, and null calibration.
 
 40 simulated participants x 1,000 trials (5 blocks of 200) of the lantern-relay
 task, RTs from the simulator's law (driven by a depth-1 learner's entropy).
 
-1. The per-participant path (regressors, OLS + Newey-West + Huber for every
-   participant x model, per-block fits, summed-BIC ranking) for the 10 default
-   models, against a straightforward loop of statsmodels fits (OLS with HAC
-   and RLM with HuberT per participant x model) on the same regressors.
-   Target: < 3 s for the foretell path.
-2. One hierarchical model (count-1), 2 chains x 1,000 draws after 1,000
-   tuning: wall time including compilation, peak memory, diagnostics, the
-   parameterisation chosen. Target: < 120 s, < 4 GB, the default Gate passed.
+1. The per-participant path (regressors, AR(1) GLS with HAC at Andrews' lag and
+   Huber for every participant x model and the baseline, per-block fits,
+   random-effects selection) for the 10 default models, against a
+   straightforward loop of statsmodels fits (OLS with HAC and RLM with HuberT
+   per participant x model) on the same regressors. Target: < 3 s for the
+   foretell path with the leak held.
+2. One hierarchical model (count-1) and the baseline, 2 chains x 1,000 draws
+   after 1,000 tuning: wall time including compilation, peak memory,
+   diagnostics. Target: < 240 s, < 4 GB, the default Gate passed.
 3. Few blocks: 20 participants x 4 blocks of 100 trials, count-0 against
-   count-1, 4 chains x 1,000 draws: PSIS-LOO alone (the plain reference) and
-   with exact refits of the units whose Pareto k is above 0.7; wall time, the
-   refits made, and whether the comparison is called.
+   count-1 and the baseline, 4 chains x 1,000 draws: PSIS-LOO alone and with
+   exact refits of the units whose Pareto k is above 0.7.
+4. Null calibration: 16 participants x 600 trials (5 blocks of 120), guesses
+   from count-1, count-2 and mix-4 learners, RTs that follow no learner
+   (a power-law practice curve, AR(1) drift with phi 0.9 or 0.5, white noise);
+   per learner, the share of participants whose 95% slope interval excludes 0
+   (nominal 5%), and how many datasets call a learner. Then RTs that do follow
+   a learner (RTLaw, 0.25 log units per bit): how often the generator is called.
 
 Run once, by hand, on a quiet machine: PYTHONPATH=src python benchmarks/rt.py
 """
 
 from __future__ import annotations
 
+import math
 import os
 import resource
 import time
@@ -31,15 +38,18 @@ import pandas as pd
 import statsmodels.api as sm
 
 from foretell.logs import validate_log
-from foretell.models import default_models, model_specs
+from foretell.models import default_models
 from foretell.regressors import regressors
-from foretell.steps.measures import analyse_rt, newey_west_lags
-from foretell.simulate import simulate_participants
+from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
+from foretell.stats.regression import newey_west_lags
+from foretell.steps.measures import analyze_rt
 from foretell.tasks import load_task
 
 TARGET_S = 3.0
-TARGET_BAYES_S = 120.0
+TARGET_BAYES_S = 240.0
 TARGET_BAYES_MB = 4096.0
+NULL_DATASETS = 5
+TRUE_DATASETS = 4
 
 
 def study():
@@ -74,47 +84,41 @@ def main() -> None:
     models = default_models(task)
     print(f"load average (1, 5, 15 min): {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     print(f"data: {log.frame['participant'].nunique()} participants x "
-          f"{len(log.frame) // log.frame['participant'].nunique()} trials; models: {len(models)}")
+          f"{len(log.frame) // log.frame['participant'].nunique()} trials; models: {len(models)} and the baseline")
 
-    leaky = [s.model_id for s in model_specs(models, task) if "leak" in s.free]
-    leaks = pd.DataFrame([{"participant": p, "model": m, "leak": 0.1}  # leaky models only
-                          for p in log.participants for m in leaky])
-    print(f"leak 0.1 given for {', '.join(leaky)}; the other models keep leak 0")
+    print("leak held at 0.1 in every model that has one (fixed=)")
     start = time.perf_counter()
-    table = regressors(log, task, models, fits=leaks)
+    table = regressors(log, task, models, fixed={"leak": 0.1})
     t_reg = time.perf_counter() - start
     start = time.perf_counter()
-    result = analyse_rt(log, task, models, fits=leaks, bayes=False)
+    result = analyze_rt(log, task, models=models, fixed={"leak": 0.1}, bayes=False)
     t_path = time.perf_counter() - start
     t_loop = statsmodels_loop(log, table, models)
     start = time.perf_counter()
-    analyse_rt(log, task, models, bayes=False)
-    t_profile = time.perf_counter() - start
-    print(f"regressors alone (10 models, leaks given): {t_reg:.2f} s")
-    print(f"per-participant path, leaks given (regressors + fits + blocks + ranking): {t_path:.2f} s "
+    analyze_rt(log, task, models=models, bayes=False)
+    t_guess = time.perf_counter() - start
+    print(f"regressors alone (10 models, leak held): {t_reg:.2f} s")
+    print(f"per-participant path, leak held (regressors + fits + blocks + random-effects selection): {t_path:.2f} s "
           f"(target < {TARGET_S:g} s: {'pass' if t_path < TARGET_S else 'FAIL'})")
-    t_fits = t_path - t_reg
-    fits_text = (f"{t_fits:.2f} s, ratio {t_loop / t_fits:.1f}x" if t_fits > 0.05 * t_path
-                 else "below the timing noise of the two runs")
-    print(f"  statsmodels loop (OLS-HAC + RLM, {len(models) * 40} fits, regressors given): "
-          f"{t_loop:.2f} s; foretell fits after the regressors: {fits_text}; statsmodels loop / "
-          f"whole foretell path (regressors included): {t_loop / t_path:.1f}x")
-    print(f"per-participant path with the leak profiled on the grid: {t_profile:.2f} s")
-    print(f"summed-BIC winner: {result.compare['model'].iloc[0]}")
+    print(f"  statsmodels loop (plain OLS-HAC + RLM, {len(models) * 40} fits, regressors given): {t_loop:.2f} s; "
+          f"statsmodels loop / whole foretell path (regressors, baseline, GLS, selection included): "
+          f"{t_loop / t_path:.1f}x")
+    print(f"per-participant path with the leaks fitted to the guesses: {t_guess:.2f} s")
+    print(f"random-effects call: {result.verdict()}")
 
-    print(f"load average before the hierarchical model: {os.getloadavg()[0]:.2f}")
+    print(f"load average before the hierarchical models: {os.getloadavg()[0]:.2f}")
     start = time.perf_counter()
-    bayes = analyse_rt(log, task, ["count-1"], draws=1000, tune=1000, chains=2, seed=0,
-                       progress=False)
+    bayes = analyze_rt(log, task, models=["count-1"], draws=1000, tune=1000, chains=2, seed=0, progress=False)
     t_bayes = time.perf_counter() - start
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"hierarchical model (count-1, 2 chains x 1,000 draws, 1,000 tuning): {t_bayes:.1f} s "
+    print(f"hierarchical models (count-1 and the baseline, 2 chains x 1,000 draws, 1,000 tuning): {t_bayes:.1f} s "
           f"including compilation; peak memory of the process {peak:.0f} MB (targets < "
           f"{TARGET_BAYES_S:g} s, < {TARGET_BAYES_MB:g} MB: "
           f"{'pass' if t_bayes < TARGET_BAYES_S and peak < TARGET_BAYES_MB else 'FAIL'})")
-    print(bayes.diagnostics.to_string(index=False))
+    print(bayes.diagnostics.drop(columns=["form_reason"]).to_string(index=False))
+    print(bayes.population.to_string(index=False))
     for note in bayes.notes:
-        if "hierarchical" in note or "ELPD" in note or "sampler said" in note:
+        if "ELPD" in note or "sampler said" in note:
             print(note)
 
 
@@ -127,20 +131,74 @@ def few_blocks() -> None:
     times = {}
     for refits in (0, 10):
         start = time.perf_counter()
-        result = analyse_rt(log, task, ["count-0", "count-1"], draws=1000, tune=1000, chains=4,
+        result = analyze_rt(log, task, models=["count-0", "count-1"], draws=1000, tune=1000, chains=4,
                             seed=0, n_jobs=2, refits=refits, progress=False)
         times[refits] = time.perf_counter() - start
         diag = result.diagnostics.set_index("model")
         top = result.compare.iloc[0]
         per_model = "; ".join(f"{m} {int(r.loo_refits)} refits, largest k {r.pareto_k_max:.2f}"
                               for m, r in diag.iterrows())
-        print(f"  refits <= {refits:>2}: {times[refits]:.1f} s; {per_model}; "
-              f"called: {bool(result.compare['called'].all())}; first {top['model']} "
-              f"(d_elpd of the second {result.compare['d_elpd'].iloc[1]:.1f} +- "
+        called = top["model"] if top["called"] else "nothing"
+        print(f"  refits <= {refits:>2}: {times[refits]:.1f} s; {per_model}; called: {called} (first "
+              f"{top['model']}; d_elpd of the second {result.compare['d_elpd'].iloc[1]:.1f} +- "
               f"{result.compare['dse'].iloc[1]:.1f})")
     print(f"  time with refits / PSIS-LOO alone: {times[10] / times[0]:.2f}x")
+
+
+def null_log_rt(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
+    """Return log RTs that follow no learner: power-law practice, AR(1) drift ("ar0.9", "ar0.5"), or white noise."""
+    if kind == "practice":  # RT = A + B t^-c (Newell & Rosenbloom, 1981), log-normal noise
+        t = np.arange(1, n + 1)
+        a, b, c = 0.45 * math.exp(rng.normal(0, 0.1)), 0.6 * math.exp(rng.normal(0, 0.2)), 0.35 + 0.1 * rng.random()
+        return np.log(a + b * t ** -c) + 0.25 * rng.normal(size=n)
+    if kind.startswith("ar"):
+        phi = float(kind[2:])
+        e = np.empty(n)
+        e[0] = rng.normal(0, 0.25)
+        for i in range(1, n):
+            e[i] = phi * e[i - 1] + rng.normal(0, 0.25 * math.sqrt(1 - phi * phi))
+        return math.log(0.6) + e
+    return math.log(0.6) + 0.25 * rng.normal(size=n)
+
+
+def calibration() -> None:
+    """Section 4: interval level and calls on RTs that follow no learner, and calls on RTs that follow one."""
+    task = load_task("tasks/lantern-relay.toml")
+    print(f"\nnull calibration: {NULL_DATASETS} datasets x 16 participants x 600 trials per structure, default "
+          f"models; share of participants whose 95% slope interval excludes 0 (nominal 0.05); load "
+          f"{os.getloadavg()[0]:.2f}")
+    for kind in ("practice", "ar0.9", "ar0.5", "white"):
+        start = time.perf_counter()
+        excluded, calls = [], []
+        for seed in range(NULL_DATASETS):
+            frame, _ = simulate_participants(task, 16, 5, models=["count-1", "count-2", "mix-4"], seed=seed,
+                                             block_length=120)
+            rng = np.random.default_rng(seed + 1000)
+            frame["rt"] = np.concatenate([np.exp(null_log_rt(kind, len(rows), rng))
+                                          for _, rows in frame.groupby("participant", sort=False)])
+            result = analyze_rt(validate_log(frame, task), task, bayes=False, seed=seed)
+            fits = result.fits[result.fits["slope_low"].notna()]
+            excluded.append(fits.assign(out=(fits["slope_low"] > 0) | (fits["slope_high"] < 0)))
+            calls.append(result.verdict())
+        rates = pd.concat(excluded).groupby("model", sort=False)["out"].mean()
+        print(f"  {kind:>8}: " + ", ".join(f"{m} {r:.3f}" for m, r in rates.items())
+              + f"; worst {rates.max():.3f}; learner called in {sum(c is not None for c in calls)} of "
+              f"{len(calls)} ({', '.join(str(c) for c in calls)}); {time.perf_counter() - start:.0f} s")
+    print(f"true effects: {TRUE_DATASETS} datasets x 16 participants x 600 trials per generator, models count-0, "
+          "count-1, count-2, mix-4")
+    for generator in ("count-1", "count-2", "mix-4"):
+        calls = []
+        for seed in range(TRUE_DATASETS):
+            spec = ParticipantSpec(generator, rt=RTLaw(per_bit=0.25))
+            frame, _ = simulate_participants(task, 16, 5, models=[spec], seed=seed, block_length=120)
+            result = analyze_rt(validate_log(frame, task), task, models=["count-0", "count-1", "count-2", "mix-4"],
+                                bayes=False, seed=seed)
+            calls.append(result.verdict())
+        print(f"  {generator}: called in {sum(c == generator for c in calls)} of {len(calls)} "
+              f"({', '.join(map(str, calls))})")
 
 
 if __name__ == "__main__":
     main()
     few_blocks()
+    calibration()

@@ -5,7 +5,7 @@ Prints, for each session length, the wall time of foretell.fitting.participants.
 models (CV and per-block refits included), the time per 1,000 trials and the peak resident memory of
 the process tree; then the same participants on a distributed.LocalCluster with two workers against
 local joblib with two processes (the ratio, and whether the tables are identical), and the same for
-the per-participant path of foretell.steps.measures.analyse_rt (regressors, leak profiles, OLS/Huber fits), with
+the per-participant path of foretell.steps.measures.analyze_rt (regressors, leak profiles, OLS/Huber fits), with
 one local process as the plain reference. The load average is printed beside every figure: the
 ratios move with what else the machine runs.
 """
@@ -22,7 +22,7 @@ import pandas as pd
 from foretell.cluster import job_backend
 from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
-from foretell.steps.measures import analyse_rt
+from foretell.steps.measures import analyze_rt
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 
@@ -72,10 +72,10 @@ def main() -> None:
     local = fit_participants(log, task, seed=0, n_jobs=2, progress=False)
     local_s = time.perf_counter() - start
     start = time.perf_counter()
-    serial_rt = analyse_rt(log, task, bayes=False)
+    serial_rt = analyze_rt(log, task, bayes=False)
     serial_rt_s = time.perf_counter() - start
     start = time.perf_counter()
-    local_rt = analyse_rt(log, task, bayes=False, n_jobs=2)
+    local_rt = analyze_rt(log, task, bayes=False, n_jobs=2)
     local_rt_s = time.perf_counter() - start
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster:
         start = time.perf_counter()
@@ -84,7 +84,7 @@ def main() -> None:
         cluster_s = time.perf_counter() - start
         start = time.perf_counter()
         with job_backend("dask", cluster.scheduler_address):
-            remote_rt = analyse_rt(log, task, bayes=False)
+            remote_rt = analyze_rt(log, task, bayes=False)
         cluster_rt_s = time.perf_counter() - start
     same = all(getattr(local, name).equals(getattr(remote, name)) for name in ("fits", "blocks", "predictions"))
     same_rt = all(serial_rt.tables()[name].equals(other.tables()[name])

@@ -17,10 +17,8 @@ from pathlib import Path
 
 import foretell
 from foretell.demo import demo_log
-from foretell.plots.common import figure_png
-from foretell.steps.groups import compare_groups
-from foretell.report.build import winners_heatmap
-from foretell.steps.measures import analyse_rt
+from foretell.plots import figure_png
+from foretell.plots.report import winners_heatmap
 
 
 def main() -> None:
@@ -41,19 +39,19 @@ def main() -> None:
     result = foretell.fit(log, task, seed=0, n_jobs=args.jobs)
     print(result.summary, end="\n\n")
 
-    rt = analyse_rt(log, task, ["count-0", "count-1", "count-2", "mix-4"], fits=result.fits,
-                    bayes=args.bayes, draws=500, chains=2)
+    rt = foretell.analyze_rt(log, task, fit=result, models=["count-0", "count-1", "count-2", "mix-4"],
+                             bayes=args.bayes, draws=500, chains=2)
     print(rt.compare[["model", "rank", "criterion", "bic_sum", "elpd", "called"]].to_string(index=False))
     print(*rt.notes, sep="\n", end="\n\n")
 
-    groups = compare_groups(log, task, result, bayes=args.bayes, draws=500, chains=2)
+    groups = foretell.compare_groups(log, task, fit=result, bayes=args.bayes, draws=500, chains=2)
     effects = groups.group_effects.query("metric == 'optimal_rate'")
     print(effects[["contrast", "block", "observed_diff", "perm_p_holm"]].to_string(index=False))
     print(*groups.notes, sep="\n", end="\n\n")
 
     out = Path(args.out)
     out.mkdir(exist_ok=True)
-    figures = {"winners": winners_heatmap(result.winners), **groups.figures}
+    figures = {"winners": winners_heatmap(result.winners), **groups.figures()}
     for name, fig in figures.items():
         (out / f"{name}.png").write_bytes(figure_png(fig))
     print(f"{len(figures)} figures written to {out}/")

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -11,7 +13,10 @@ import pytest
 import foretell
 from foretell.choice import choice_proba
 from foretell.cli.main import main
+from foretell.errors import UsageError
 from foretell.learners import Counting
+from foretell.results import Result
+from foretell.steps.guesses import FitResult
 from foretell.tasks import load_task
 
 TASK_PATH = Path(__file__).resolve().parents[1] / "tasks" / "tide-gauge.toml"
@@ -58,7 +63,7 @@ def study() -> pd.DataFrame:
 
 
 @pytest.fixture(scope="module")
-def result(study: pd.DataFrame) -> foretell.steps.guesses.FitResult:
+def result(study: pd.DataFrame) -> FitResult:
     return foretell.fit(study, TASK_PATH, models=MODELS, seed=3, n_starts=2)
 
 
@@ -73,6 +78,40 @@ def test_tables_hold_the_contract_columns(result) -> None:
     assert fits["n_trials"].nunique() == 1 and fits["n_trials"].iloc[0] == 240 - 3 - 1
     assert set(result.winners["block"]) == {"all", "1", "2", "3"}
     assert set(result.selection["group"]) == {"all", "g1", "g2"}
+
+
+def test_the_result_follows_the_step_contract(study, result) -> None:
+    assert isinstance(result, FitResult) and isinstance(result, Result) and result.step == "fit"
+    assert result.model_ids == MODELS and result.task.name == "tide-gauge"
+    assert result.texts() == {"summary.txt": result.summary + "\n"}
+    json.dumps(result.settings)  # JSON-ready: the manifest records it
+    assert result.settings["trials"] == "best"
+    best = result.winners.query("block == 'all'")[["participant", "best_model"]]
+    trials = result.tables()["trials"]
+    assert set(zip(trials["participant"], trials["model"])) == set(best.itertuples(index=False, name=None))
+    every = replace(result, settings={**result.settings, "trials": "all"})
+    assert len(every.tables()["trials"]) == len(result.predictions)
+    assert "trials" not in replace(result, settings={**result.settings, "trials": "none"}).tables()
+    assert "trials.csv" in result.files() and "summary.txt" in result.files()
+    with pytest.raises(UsageError, match="did you mean 'all'"):
+        foretell.fit(study, TASK_PATH, models=MODELS, trials="al")
+
+
+def test_options_are_checked_before_any_fitting(study) -> None:
+    for bad, message in [({"criterion": "aic"}, "criterion must be one of"), ({"n_jobs": 0}, "n_jobs"),
+                         ({"seed": -1}, "seed"), ({"n_replicates": 0}, "n_replicates"),
+                         ({"context_depth": 99}, "response-tree depth"), ({"models": ["count-x"]}, "count-x")]:
+        with pytest.raises(UsageError, match=message):
+            foretell.fit(study.iloc[:0], TASK_PATH, **bad)  # an empty log would fail later, as a LogError
+
+
+def test_a_participant_with_nothing_to_fit_is_named_in_the_notes(study) -> None:
+    quiet = study.assign(response=np.where(study["participant"] == "p04", "", study["response"]))
+    result = foretell.fit(quiet, TASK_PATH, models=["count-0", "count-1"], seed=np.random.default_rng(5),
+                          n_starts=1, n_replicates=2)
+    assert result.excluded["participant"].tolist() == ["p04"]
+    assert result.notes == ("participant p04 left out: every guess missed",)
+    assert isinstance(result.settings["seed"], int)
 
 
 def test_bic_and_aic_follow_their_definitions(result) -> None:
@@ -176,7 +215,7 @@ def test_drifting_choice_determinism_is_not_mistaken_for_a_change_of_model() -> 
             rows.append({"participant": f"d{p:02d}", "block": t // 100 + 1, "trial": t + 1,
                          "stimulus": task.symbols[x[t]],
                          "response": task.symbols[int(rng.random() > probs[0])]})
-    result = foretell.fit(pd.DataFrame(rows), task, ["count-0", "count-1", "count-2"], seed=0, n_starts=2)
+    result = foretell.fit(pd.DataFrame(rows), task, models=["count-0", "count-1", "count-2"], seed=0, n_starts=2)
     per_block = result.winners[result.winners["block"] != "all"]
     later = per_block[per_block["block"].astype(int) >= 2]
     assert (later["best_model"] == "count-2").mean() > 0.5

@@ -7,15 +7,9 @@ import pytest
 from scipy import integrate, optimize, signal, stats
 from scipy.special import digamma, gammaln, logsumexp, softmax, xlogy
 
-from foretell.stats.selection import (
-    effective_sample_size,
-    exceedance_prob,
-    family_bms,
-    rfx_bms,
-    rfx_gibbs,
-    split_rhat,
-)
 from foretell.errors import UsageError
+from foretell.stats.convergence import effective_sample_size, split_rhat
+from foretell.stats.selection import exceedance_prob, family_bms, family_evidence, groups_differ, rfx_bms, rfx_gibbs
 
 
 # ----------------------------------------------------------------------------- RFX-BMS kernel
@@ -341,3 +335,30 @@ def test_one_family_or_one_model_has_nothing_to_compare():
     assert fam.converged and fam.exceedance.tolist() == [1.0] and np.isnan(fam.bor)
     one = rfx_gibbs(lme[:, :1], rng=0)
     assert one.converged and one.protected_exceedance.tolist() == [1.0] and np.isnan(one.bor)
+
+
+# ----------------------------------------------------------------------------- between groups
+
+
+def test_groups_from_different_models_differ_and_from_one_mixture_do_not():
+    rng = np.random.default_rng(5)
+
+    def evidence(models):
+        lme = rng.normal(0.0, 1.0, (len(models), 3))
+        lme[np.arange(len(models)), models] += 6.0
+        return lme
+
+    a, b = evidence(np.zeros(15, int)), evidence(np.full(15, 2))
+    prob, log_bf = groups_differ(a, b)
+    assert prob > 0.99 and log_bf > 0  # Rigoux et al. (2014): clearly different frequencies
+    mix = evidence(np.tile([0, 1], 15))
+    prob_same, _ = groups_differ(mix[:15], mix[15:])
+    assert prob_same < 0.2
+    with pytest.raises(UsageError):
+        groups_differ(a, b[:, :2])
+
+
+def test_family_evidence_is_the_log_mean_over_members():
+    lme = np.log(np.array([[1.0, 3.0, 2.0], [4.0, 4.0, 1.0]]))
+    fam = family_evidence(lme, [[0, 1], [2]])
+    assert np.allclose(np.exp(fam), [[2.0, 2.0], [4.0, 1.0]])  # Penny et al. (2010): uniform within family

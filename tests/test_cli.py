@@ -297,7 +297,7 @@ def test_recover_from_fits_and_its_bad_inputs(tmp_path: Path, capsys) -> None:
     assert "--trials" in capsys.readouterr().err
     assert main(["recover", "--task", "tide-gauge", "--participants", "3", "--trials", "60",
                  "--models", "count-0", "--from-fits", str(tmp_path), "--out", str(tmp_path / "f")]) == 1
-    assert "fits.csv" in capsys.readouterr().err
+    assert f"{tmp_path}: no manifest.json: not a folder foretell wrote" in capsys.readouterr().err
 
 
 def test_reaction_design_source_not_given_and_fit_refused(tmp_path: Path, capsys) -> None:
@@ -346,3 +346,81 @@ def test_a_task_deeper_than_the_learners_limit_is_refused_before_fitting(tmp_pat
     err = [line for line in capsys.readouterr().err.strip().splitlines() if not line.startswith("warning:")]
     assert len(err) == 1 and "at most 12 back" in err[0] and "Traceback" not in err[0]
     assert not (tmp_path / "r").exists()
+
+
+def test_analyse_is_accepted_and_help_lists_analyze_only(capsys) -> None:
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    listing = capsys.readouterr().out
+    assert "analyze" in listing and "analyse " not in listing
+    with pytest.raises(SystemExit) as exit_:
+        main(["analyse", "--help"])
+    assert exit_.value.code == 0 and "foretell analyze" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("command", [["demo"], ["fit", "l.csv", "--task", "t", "--out", "o"],
+                                     ["analyze", "l.csv", "--task", "t", "--out", "o"],
+                                     ["rt", "l.csv", "--task", "t", "--out", "o"],
+                                     ["groups", "l.csv", "--task", "t", "--out", "o"],
+                                     ["recover", "--task", "t", "--participants", "2", "--trials", "9",
+                                      "--models", "count-0", "--out", "o"]])
+def test_every_command_runs_one_job_unless_told(command) -> None:
+    from foretell.cli.parser import build_parser
+
+    assert build_parser().parse_args(command).jobs == 1
+
+
+def test_the_demo_says_which_steps_run() -> None:
+    from foretell.demo import demo_plan, demo_task
+
+    line = demo_plan(demo_task(), ["fit", "report"])
+    assert "fits" not in line and "report" not in line and "running: validation, reaction times" in line
+    assert "fits and comparisons" in demo_plan(demo_task())
+
+
+def test_messages_give_command_line_advice(tmp_path: Path, capsys) -> None:
+    from foretell.cli.commands import cli_words
+
+    assert cli_words("pass rt_unit='ms' (CLI: --rt-unit ms)") == "pass --rt-unit ms"
+    log = tmp_path / "lab.csv"
+    log.write_text("participant,block,trial,stimulus,guess\np01,1,1,up,down\n")
+    assert main(["check", str(log), "--task", "tide-gauge"]) == 1
+    err = capsys.readouterr().err
+    assert "--map response=" in err and "columns=" not in err
+
+
+def _recover_folder(tmp_path: Path) -> Path:
+    """A folder as foretell recover writes it (tables only: enough for the checks before any work)."""
+    import pandas as pd
+
+    from foretell.folders import RECOVERY_TABLES, fingerprints
+    from foretell.outputs import write_outputs
+    from foretell.tasks import load_task
+
+    tables = {name: pd.DataFrame({"trials": [60]}) for name in RECOVERY_TABLES}
+    return write_outputs(tmp_path / "design", tables, texts={"answer.txt": "enough\n"},
+                         manifest={"step": "recover", **fingerprints(load_task("tide-gauge"))})
+
+
+def test_a_folder_that_is_read_is_an_input_of_the_run(tmp_path: Path, capsys) -> None:
+    log, design = _study(tmp_path), _recover_folder(tmp_path)
+    before = {p.name: p.read_bytes() for p in design.iterdir()}
+    common = ["analyze", str(log), "--task", "tide-gauge", "--recovery", str(design), "--force", "--skip",
+              "fit,rt,groups,events,report"]  # refused before any work; nothing long even if not
+    assert main([*common, "--out", str(design)]) == 1
+    assert "holds the input" in capsys.readouterr().err
+    assert main([*common, "--out", str(design / "inside")]) == 1
+    assert "lies inside" in capsys.readouterr().err
+    assert {p.name: p.read_bytes() for p in design.iterdir()} == before
+    assert main(["rt", str(log), "--task", "tide-gauge", "--fits", str(design), "--out", str(tmp_path / "r")]) == 1
+    assert "a foretell recover output, not the output folder of foretell fit" in capsys.readouterr().err
+
+
+def test_a_design_check_of_another_task_is_refused(tmp_path: Path, capsys) -> None:
+    design = _recover_folder(tmp_path)
+    log = tmp_path / "compass.csv"
+    log.write_text("participant,block,trial,stimulus,response\n"
+                   + "".join(f"p01,1,{t},n,s\n" for t in range(1, 30)))
+    code = main(["analyze", str(log), "--task", "compass-fair", "--recovery", str(design), "--out",
+                 str(tmp_path / "r"), "--skip", "fit,rt,groups,events,report"])
+    assert code == 1 and "made on another task, not 'compass-fair'" in capsys.readouterr().err

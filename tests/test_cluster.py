@@ -12,7 +12,7 @@ from foretell.cluster import batches, job_backend, job_count
 from foretell.errors import UsageError
 from foretell.fitting.participants import fit_participants
 from foretell.logs import validate_log
-from foretell.steps.measures import analyse_rt
+from foretell.steps.measures import analyze_rt
 from foretell.simulate import simulate_participants
 from foretell.tasks import load_task
 
@@ -38,10 +38,10 @@ def test_rt_per_participant_path_on_dask_gives_the_local_tables() -> None:
     frame, _ = simulate_participants(task, 5, 2, models=["count-0", "count-1"], seed=2, block_length=40)
     log = validate_log(frame, task)
     models = ["count-0", "count-1", "count-1-leak", "mix-3"]  # the leak is profiled in the jobs
-    local = analyse_rt(log, task, models, bayes=False)
+    local = analyze_rt(log, task, models=models, bayes=False)
     with _cluster() as cluster:
         with job_backend("dask", cluster.scheduler_address):
-            remote = analyse_rt(log, task, models, bayes=False, n_jobs=2)
+            remote = analyze_rt(log, task, models=models, bayes=False, n_jobs=2)
         assert _ran_there(cluster, "_participant_path")
     for name, table in local.tables().items():
         pd.testing.assert_frame_equal(table, remote.tables()[name])
@@ -86,6 +86,16 @@ def test_bad_backend_settings_are_usage_errors(backend, scheduler, message) -> N
     with pytest.raises(UsageError, match=message):
         with job_backend(backend, scheduler, timeout=2):
             pass
+
+
+def test_a_scheduler_without_workers_is_a_usage_error_with_cli_advice() -> None:
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=None) as cluster:
+        with pytest.raises(UsageError, match=r"has no workers: start one .* with: dask worker ") as caught:
+            with job_backend("dask", cluster.scheduler_address, timeout=1):
+                pass
+    assert "\\n" not in str(caught.value) and "=" not in str(caught.value)
 
 
 @pytest.mark.parametrize("args, function, outputs", [

@@ -16,14 +16,13 @@ from foretell.compare import (
     families,
     families_blocks,
     log_evidence_table,
-    lookalikes,
     selection,
     selection_blocks,
     strength,
     winners,
 )
 from foretell.errors import UsageError
-from foretell.models import parse_model
+from foretell.models import lookalikes, parse_model
 
 DEFAULT_MODELS = ["count-0", "count-1", "count-2", "count-3", "count-0-leak", "count-1-leak",
                   "count-task", "mix-3", "source"]

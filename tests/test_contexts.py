@@ -11,7 +11,8 @@ import pandas as pd
 import pytest
 
 from foretell.choice import choice_proba
-from foretell.contexts import STATUSES, context_agreement, context_report
+from foretell.contexts import STATUSES, context_agreement, context_report, response_tree_depth
+from foretell.learners.mixture import MAX_TREE_DEPTH
 from foretell.errors import UsageError
 from foretell.learners import Counting, TreeMixture
 from foretell.logs import validate_log
@@ -285,3 +286,15 @@ def test_bad_baseline_arguments_are_usage_errors(tide):
         context_report(log, tide, fits=fits, winners=winners, n_replicates=0)
     with pytest.raises(UsageError, match="level"):
         context_agreement(context_report(log, tide), tide, level=1.5)
+
+
+def test_response_trees_look_one_symbol_deeper_than_the_task_within_the_limit(tide):
+    assert response_tree_depth(tide) == tide.max_depth + 1
+    assert response_tree_depth(tide, 0) == 0 and response_tree_depth(tide, MAX_TREE_DEPTH) == MAX_TREE_DEPTH
+    deep = Task.from_dict({"name": "deep", "symbols": ["a", "b"], "contexts": [
+        {"past": ["a"] * MAX_TREE_DEPTH, "next": {"a": 0.5, "b": 0.5}}] + [
+        {"past": ["b"] + ["a"] * k, "next": {"a": 0.5, "b": 0.5}} for k in range(MAX_TREE_DEPTH)]})
+    assert response_tree_depth(deep) == MAX_TREE_DEPTH
+    for bad in (-1, MAX_TREE_DEPTH + 1, 2.5, True):
+        with pytest.raises(UsageError, match="response-tree depth"):
+            response_tree_depth(tide, bad)

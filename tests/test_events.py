@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import json
+import math
 import re
 import sys
 
@@ -12,11 +13,14 @@ import pandas as pd
 import pytest
 
 from foretell.errors import UsageError
-from foretell.steps.events import (bids_labels, column_name, events_tables, sidecar_json, to_metadata,
-                             to_tsv)
 from foretell.logs import validate_log
 from foretell.regressors import regressors
 from foretell.simulate import simulate_participants
+from foretell.steps.bids import bids_labels, column_name, sidecar_json, to_tsv
+from foretell.steps.epochs import to_metadata
+from foretell.steps.events import EventsResult, default_event_models, export_events
+from foretell.steps.guesses import fit
+from foretell.tasks import Task
 
 MODELS = ["count-1", "mix-3"]
 
@@ -35,7 +39,7 @@ def log(raw, tide):
 
 @pytest.fixture(scope="module")
 def files(log, tide):
-    return events_tables(log, tide, MODELS)
+    return export_events(log, tide, models=MODELS)
 
 
 def read_back(data: bytes) -> pd.DataFrame:
@@ -60,6 +64,20 @@ def test_events_files_follow_the_bids_tabular_rules(files, log):
     assert len(table) == 2 * n and set(table["trial_type"]) == {"guess", "reveal"}
     # BIDS "Task events": rows in chronological order (recommended)
     assert (np.diff(table["onset"]) >= 0).all()
+
+
+def test_the_result_writes_the_participants_table_and_every_events_file(files):
+    assert isinstance(files, EventsResult) and files.step == "events"
+    assert list(files.tables()) == ["participants"] and files.tables()["participants"] is files.labels
+    blobs = files.blobs()
+    assert set(blobs) == set(files.files) | set(files.sidecars)
+    assert blobs["sub-p01_task-tidegauge_events.tsv"] == to_tsv(files.files["sub-p01_task-tidegauge_events.tsv"])
+    assert files.settings["models"] == MODELS and files.model_ids == MODELS
+
+
+def test_the_files_do_not_depend_on_n_jobs(files, log, tide):
+    two = export_events(log, tide, models=MODELS, n_jobs=2)
+    assert two.blobs() == files.blobs() and two.labels.equals(files.labels) and two.notes == files.notes
 
 
 def test_events_values_match_the_log_and_the_regressors(files, log, tide):
@@ -125,31 +143,31 @@ def test_sessions_and_relabelled_participants(raw, tide):
     frame["participant"] = frame["participant"].map({"p01": "s_1", "p02": "s-1"})
     frame["session"] = np.where(frame["block"] == 2, 2, 1)
     log = validate_log(frame, tide)
-    out = events_tables(log, tide, ["count-0"])
+    out = export_events(log, tide, models=["count-0"])
     assert sorted(out.files) == ["sub-s1_ses-1_task-tidegauge_events.tsv",
                                  "sub-s1_ses-2_task-tidegauge_events.tsv",
                                  "sub-s1x2_ses-1_task-tidegauge_events.tsv",
                                  "sub-s1x2_ses-2_task-tidegauge_events.tsv"]
     assert list(out.labels.columns) == ["participant", "session", "bids_label", "bids_session"]
-    assert len(out.labels) == 4 and any("counter" in w for w in out.warnings)
+    assert len(out.labels) == 4 and any("counter" in w for w in out.notes)
     table = out.files["sub-s1x2_ses-2_task-tidegauge_events.tsv"]
     assert set(table["block"]) == {2}
 
 
 def test_without_onsets_the_result_warns(raw, tide):
     log = validate_log(raw.drop(columns=["onset", "reveal_onset"]), tide)
-    out = events_tables(log, tide, ["count-1"], stimulus_duration=0.8)
+    out = export_events(log, tide, models=["count-1"], stimulus_duration=0.8)
     table = read_back(to_tsv(out.files["sub-p01_task-tidegauge_events.tsv"]))
     assert table["onset"].isna().all()
     assert (table["trial_type"].to_numpy()[:4] == ["guess", "reveal", "guess", "reveal"]).all()
     np.testing.assert_allclose(table.loc[table["trial_type"] == "reveal", "duration"], 0.8)
-    assert sum("EEG alignment" in w for w in out.warnings) == 2
+    assert sum("EEG alignment" in w for w in out.notes) == 2
 
 
 def test_leaky_models_need_a_leak_and_tsv_refuses_tabs(log, tide):
     with pytest.raises(UsageError, match="needs a leak"):
-        events_tables(log, tide, ["count-1-leak"])
-    fixed = events_tables(log, tide, ["count-1-leak"], fixed={"leak": 0.2})
+        export_events(log, tide, models=["count-1-leak"])
+    fixed = export_events(log, tide, models=["count-1-leak"], fixed={"leak": 0.2})
     side = fixed.sidecars["sub-p01_task-tidegauge_events.json"]
     assert "leak 0.2" in side["entropy_count_1_leak"]["Description"]
     with pytest.raises(UsageError, match="tab"):
@@ -199,3 +217,69 @@ def test_metadata_attaches_to_mne_epochs(log, tide):
     epochs.drop([0, 3], verbose=False)  # dropped epochs are matched through epochs.selection
     kept = to_metadata(log, tide, epochs, participant="p01", models=MODELS, locked="reveal")
     np.testing.assert_array_equal(kept["trial"], np.delete(trials["trial"].to_numpy(), [0, 3]))
+
+
+# -- issue regressions ---------------------------------------------------------------------------------
+GATE = Task.from_dict({"name": "gate", "symbols": ["a", "b"], "contexts": [
+    {"past": ["a"], "next": {"a": 0.0, "b": 1.0}}, {"past": ["b"], "next": {"a": 0.5, "b": 0.5}}]})
+
+
+def test_bids_files_hold_na_never_inf_or_minus_zero():
+    # A sequence the task makes impossible ("a" after "a") gives the source an infinite surprise, and a
+    # certain symbol a surprise of -log2(1) = -0.0: BIDS tabular files hold n/a for a value that is
+    # missing or undefined (BIDS, "Common principles: tabular files"), never inf, and no "-0".
+    stimuli = list("abaabbabaabab")
+    n = len(stimuli)
+    frame = pd.DataFrame({"participant": "p1", "block": 1, "trial": range(1, n + 1), "stimulus": stimuli,
+                          "response": list("bbabbaabbabba"), "rt": 0.5, "onset": np.arange(n) * 2.0,
+                          "reveal_onset": np.arange(n) * 2.0 + 1.0})
+    result = export_events(validate_log(frame, GATE), GATE, models=["source", "count-0"])
+    text = result.blobs()["sub-p1_task-gate_events.tsv"].decode("utf-8")
+    rows = [line.split("\t") for line in text.splitlines()]
+    header, cells = rows[0], [c for row in rows[1:] for c in row]
+    numbers = [float(c) for c in cells if re.fullmatch(r"[-+]?(\d+\.?\d*(e[-+]?\d+)?|inf)", c, re.I)]
+    assert numbers and all(math.isfinite(v) for v in numbers)
+    assert not any(v == 0 and math.copysign(1.0, v) < 0 for v in numbers)
+    table = read_back(text.encode("utf-8"))
+    reveal = table[table["trial_type"] == "reveal"].reset_index(drop=True)
+    impossible = [t for t in range(1, n) if stimuli[t - 1] == stimuli[t] == "a"]
+    assert reveal.loc[impossible, "surprise_source"].isna().all()
+    assert (reveal["surprise_source"].dropna() >= 0).all() and header[:2] == ["onset", "duration"]
+    side = json.loads(result.blobs()["sub-p1_task-gate_events.json"])
+    assert "probability 0" in side["surprise_source"]["Description"]
+
+
+def test_no_guess_locked_row_carries_what_only_the_reveal_tells(files, log, tide):
+    # The surprise of a trial's symbol is known only once the symbol is revealed: guess rows (and
+    # guess-locked epochs) are n/a there, reveal rows carry it; the sidecar says which is which.
+    for name, table in files.files.items():
+        surprise = [c for c in table.columns if c.startswith("surprise_")]
+        assert surprise and table.loc[table["trial_type"] == "guess", surprise].isna().all().all()
+        assert table.loc[table["trial_type"] == "reveal", surprise].notna().any().all()
+        side = files.sidecars[name.replace(".tsv", ".json")]
+        assert "n/a on guess rows" in side["surprise_mix_3"]["Description"]
+        assert "known at the guess prompt" in side["entropy_mix_3"]["Description"]
+    trials = log.frame[log.frame["participant"] == "p01"]
+    events = np.c_[np.arange(len(trials)) * 100, np.zeros(len(trials), int), np.ones(len(trials), int)]
+    guess = to_metadata(log, tide, events, participant="p01", models=MODELS)
+    reveal = to_metadata(log, tide, events, participant="p01", models=MODELS, locked="reveal")
+    columns = [column_name("surprise", m) for m in MODELS]
+    assert guess[columns].isna().all().all() and reveal[columns].notna().any().all()
+    assert guess["entropy_mix_3"].equals(reveal["entropy_mix_3"])
+
+
+def test_participants_the_fit_left_out_get_no_events_file(raw, tide):
+    # A participant who missed every guess has no fit, so no leak for count-0-leak: the events step
+    # leaves them out, as the fit did, and says so (it used to stop: "needs a leak for participant p02").
+    frame = raw.copy()
+    frame.loc[frame["participant"] == "p02", ["response", "rt"]] = ["", np.nan]
+    log = validate_log(frame, tide)
+    fitted = fit(log, tide, models=["count-0", "count-0-leak"], n_starts=1, n_replicates=2)
+    assert fitted.excluded["participant"].tolist() == ["p02"]
+    out = export_events(log, tide, fit=fitted)
+    assert sorted(out.files) == ["sub-p01_task-tidegauge_events.tsv"]
+    assert out.labels["participant"].tolist() == ["p01"]
+    assert any("participant p02 left out" in note and "every guess missed" in note for note in out.notes)
+    assert "entropy_count_0_leak" in out.files["sub-p01_task-tidegauge_events.tsv"]
+    assert default_event_models(tide, fitted) == ["count-0", "count-0-leak"]
+    assert "count-0-leak" not in default_event_models(tide) and "count-1" in default_event_models(tide)

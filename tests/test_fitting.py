@@ -340,6 +340,17 @@ def test_same_seed_same_tables_and_n_jobs_does_not_matter(lantern, small_group, 
     assert fits["converged"].all() and fits["cv_converged"].all()
 
 
+def test_a_participants_fits_do_not_depend_on_who_else_is_fitted(lantern, small_group, group_fit):
+    # random starts come from child_rng(seed, "starts", participant, model): keyed by labels, not position
+    # (the block refits, on few trials, are where a random start can win)
+    pair = small_group[small_group["participant"].isin(["p1", "p3"])]
+    alone = fit_participants(validate_log(pair, lantern), lantern, GROUP_MODELS, seed=3, progress=False)
+    for name in ("fits", "blocks"):
+        table = getattr(group_fit, name)
+        kept = table[table["participant"].isin(["p1", "p3"])].reset_index(drop=True)
+        pd.testing.assert_frame_equal(getattr(alone, name), kept, check_exact=True)
+
+
 def test_a_model_never_fits_worse_than_the_model_it_nests(group_fit):
     # count-0 is count-0-leak at leak = 0: the maximum likelihood of the larger model is at least
     # that of the nested one on the same trials (a property of nested models, common practice).

@@ -87,10 +87,15 @@ def corrupted_task(draw) -> bytes:
                   'symbols = ["u-p", "down"]', 'symbols = []', 'symbols = "up"']))),
              ('past = ["up"]', draw(st.sampled_from(['past = [["up"]]', 'past = ["left"]', "past = 3",
                                                      'past = ["up", "up", "up"]']))),
-             ("[[contexts]]", draw(st.sampled_from(["[[contexts]", "[contexts]", "[[contexts]]"])))]
+             ("[[contexts]]", draw(st.sampled_from(["[[contexts]", "[contexts]", "[[contexts]]", "[[contexs]]",
+                                                    "[[Contexts]]"]))),
+             ("block_length = 100", draw(st.sampled_from(["block_lenght = 100", "Block_length = 100",
+                                                          'block_length = 100\nsymbol = "up"']))),
+             ("next = { up = 0.25", draw(st.sampled_from(["nxt = { up = 0.25", "next = { up = 0.25",
+                                                          "past2 = []\nnext = { up = 0.25"])))]
     for old, new in draw(st.lists(st.sampled_from(edits), min_size=1, max_size=3)):
         text = text.replace(old, new, 1)
-    data = text.encode("utf-8")
+    data = draw(st.sampled_from([b"", b"\xef\xbb\xbf"])) + text.encode("utf-8")  # with or without a BOM
     if draw(st.booleans()):
         data = data[: draw(st.integers(0, len(data)))]
     return data
@@ -122,6 +127,30 @@ def test_task_on_corrupted_task_files(tmp_path: Path, capsys, data: bytes) -> No
     path.write_bytes(data)
     code = main(["task", str(path)])
     _assert_clean(code, capsys.readouterr().err)
+
+
+KEY = st.text(string.ascii_letters + "_", min_size=1, max_size=12)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(key=KEY, where=st.sampled_from(["first line", "before the contexts", "in a context"]),
+       table=st.integers(0, 2))
+def test_unknown_keys_in_task_files_are_refused_at_their_line(tmp_path: Path, capsys, key: str, where: str,
+                                                               table: int) -> None:
+    from foretell.taskfile import CONTEXT_KEYS, KEYS
+
+    if key in (CONTEXT_KEYS if where == "in a context" else KEYS):
+        return
+    lines = TASK_TEXT.splitlines()
+    tables = [i for i, text in enumerate(lines) if text.startswith("[[contexts]]")]
+    at = {"first line": 0, "before the contexts": tables[0], "in a context": tables[table] + 1}[where]
+    lines.insert(at, f"{key} = 1")
+    path = tmp_path / "task.toml"
+    path.write_text("\n".join(lines) + "\n")
+    code = main(["task", str(path)])
+    err = capsys.readouterr().err
+    _assert_clean(code, err)
+    assert code == 1 and f"{path}:{at + 1}:1: " in err and f"unknown key '{key}'" in err
 
 
 @settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])

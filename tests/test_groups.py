@@ -1,37 +1,25 @@
-"""Tests of learning curves and group comparison: metrics, permutation tests, the group models."""
+"""The groups step: learning curves, permutation contrasts, the summary over blocks, the group models' use."""
 
 from __future__ import annotations
 
 import math
-from itertools import combinations
 
 import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
 
-from foretell.hierarchical.sampling import Gate
+from foretell.curves import context_learning, learning_curves, participant_trends
 from foretell.errors import UsageError
-from foretell.fitting.participants import fit_participants
-from foretell.steps.groups import (
-    GroupModelSpec,
-    build_model,
-    compare_groups,
-    context_learning,
-    family_evidence,
-    fit_group_model,
-    groups_differ,
-    hdi,
-    holm,
-    learning_curves,
-    model_data,
-    permutation_effects,
-    permutation_p,
-    summarise_group_model,
-)
+from foretell.hierarchical.group_model import model_data, summarise_joint
 from foretell.learners import Counting, TreeMixture
 from foretell.logs import validate_log
 from foretell.simulate import simulate_participants
+from foretell.stats.intervals import hdi
+from foretell.stats.permutation import holm
+from foretell.steps.contrasts import JOINT_COLUMNS, PERMUTATION, POSTERIOR, joint_effects, permutation_effects
+from foretell.steps.groups import GroupResult, compare_groups
+from foretell.steps.guesses import fit
 from foretell.tasks import Task
 
 
@@ -143,34 +131,15 @@ def test_rt_cost_of_surprise_is_the_least_squares_slope():
 # --------------------------------------------------------------------------- permutation tests
 
 
-def test_permutation_p_is_the_exact_two_sided_test():
-    a, b = np.array([1.2, 2.5, 3.1]), np.array([0.1, 0.4, 1.0, 0.3])
-    pooled = np.r_[a, b]
-    stat = [pooled[list(i)].mean() - np.delete(pooled, list(i)).mean() for i in combinations(range(7), 3)]
-    obs = a.mean() - b.mean()
-    stat = np.asarray(stat)
-    # Fisher-Pitman exact test, two-sided as twice the smaller tail (common practice)
-    exact = min(1.0, 2 * min(np.mean(stat <= obs + 1e-12), np.mean(stat >= obs - 1e-12)))
-    assert permutation_p(a, b, rng=np.random.default_rng(0)) == pytest.approx(exact)
-
-
-def test_holm_matches_statsmodels_and_skips_missing_tests():
-    from statsmodels.stats.multitest import multipletests
-
-    p = np.array([0.01, np.nan, 0.04, 0.03, 0.2])
-    expected = multipletests(p[~np.isnan(p)], method="holm")[1]  # Holm (1979) via statsmodels
-    out = holm(p)
-    assert np.isnan(out[1])
-    assert np.allclose(out[~np.isnan(p)], expected)
-
-
-def _null_curves(rng, n_per_group=8, n_blocks=3):
+def _null_curves(rng, n_per_group=8, n_blocks=3, shift=0.0, slope=0.0):
+    """Return gain_bits curves of groups A and B: N(0, 1) values, B's moved by shift + slope x (block - 1)."""
     rows = []
     for g in ("A", "B"):
         for i in range(n_per_group):
             for b in range(1, n_blocks + 1):
+                moved = (shift + slope * (b - 1)) if g == "B" else 0.0
                 rows.append({"participant": f"{g}{i}", "group": g, "session": "1", "block": str(b),
-                             "metric": "gain_bits", "value": rng.normal(), "n_trials": 50})
+                             "metric": "gain_bits", "value": rng.normal() + moved, "n_trials": 50})
     return pd.DataFrame(rows)
 
 
@@ -183,6 +152,115 @@ def test_permutation_effects_table_and_holm_within_metric():
     assert np.allclose(out["observed_diff"], (means["B"] - means["A"]).to_numpy())
     again = permutation_effects(curves, [("B", "A")], n_permutations=199, seed=1)
     assert out.equals(again)  # seeded
+    # each test draws from its own stream, keyed by metric, block and contrast, not by its position
+    later = curves[curves["block"] != "1"]
+    later = pd.concat([later[later["block"] == "3"], later[later["block"] == "2"]])  # blocks in another order
+    shuffled = permutation_effects(later, [("B", "A")], n_permutations=199, seed=1)
+    assert shuffled.set_index("block")["perm_p"].sort_index().equals(out.set_index("block")["perm_p"].iloc[1:])
+
+
+# --------------------------------------------------------------------------- the summary over blocks
+
+
+def test_participant_trends_are_each_participants_mean_and_least_squares_slope():
+    rng = np.random.default_rng(5)
+    curves = _null_curves(rng, n_per_group=4, n_blocks=5, slope=0.3)
+    curves = curves[~((curves["participant"] == "A1") & (curves["block"] == "2"))]  # a block without a value
+    rt = curves.assign(metric="median_rt", value=np.exp(curves["value"] / 4))  # a log metric
+    trends = participant_trends(pd.concat([curves, rt], ignore_index=True)).set_index(
+        ["metric", "participant", "summary"])
+    for metric, part in (("gain_bits", curves), ("median_rt", rt)):
+        for pid, rows in part.groupby("participant"):
+            x = rows["block"].astype(float).to_numpy() - 1.0  # blocks 1..5 in run order: x = 0..4
+            y = rows["value"].to_numpy() if metric == "gain_bits" else np.log(rows["value"].to_numpy())
+            ref = stats.linregress(x, y)  # scipy.stats reference (Virtanen et al., 2020)
+            assert trends.loc[(metric, pid, "learning slope"), "value"] == pytest.approx(ref.slope, rel=1e-10)
+            assert trends.loc[(metric, pid, "mean over blocks"), "value"] == pytest.approx(y.mean(), rel=1e-12)
+    assert trends.loc[("gain_bits", "A1", "learning slope"), "n_blocks"] == 4
+    assert (trends["blocks"] == 5).all()
+
+
+def test_joint_summary_is_the_difference_of_participants_summaries():
+    curves = _null_curves(np.random.default_rng(8), n_per_group=6, n_blocks=4, shift=0.5, slope=0.4)
+    out = joint_effects(curves, [("B", "A")], n_permutations=199, seed=2)
+    assert list(out.columns) == JOINT_COLUMNS and len(out) == 2
+    assert (out["method"] == PERMUTATION).all() and (out["level"] == 0.95).all() and out["called"].isna().all()
+    row = out.set_index("summary")
+    # independent computation: each participant's least-squares line (numpy.polyfit; common practice)
+    fitted = {pid: np.polyfit(rows["block"].astype(float), rows["value"], 1)
+              for pid, rows in curves.groupby("participant")}
+    slopes = pd.Series({pid: c[0] for pid, c in fitted.items()})
+    means = curves.groupby("participant")["value"].mean()
+    is_b = slopes.index.str.startswith("B")
+    assert row.loc["learning slope", "estimate"] == pytest.approx(slopes[is_b].mean() - slopes[~is_b].mean())
+    assert row.loc["mean over blocks", "estimate"] == pytest.approx(means[is_b].mean() - means[~is_b].mean())
+    assert row.loc["learning slope", "scale"] == "bits per trial per block"
+    for summary in ("learning slope", "mean over blocks"):
+        assert row.loc[summary, "low"] < row.loc[summary, "estimate"] < row.loc[summary, "high"]
+    assert np.allclose(out["perm_p_holm"], holm(out["perm_p"].to_numpy()))
+    assert out.equals(joint_effects(curves, [("B", "A")], n_permutations=199, seed=2))
+
+
+def test_joint_summary_detects_a_true_group_difference():
+    # B is better by 0.8 sd in every block, and improves by 0.4 sd per block more than A
+    curves = _null_curves(np.random.default_rng(21), n_per_group=10, n_blocks=6, shift=0.8, slope=0.4)
+    out = joint_effects(curves, [("B", "A")], n_permutations=999, seed=0).set_index("summary")
+    for summary in ("mean over blocks", "learning slope"):
+        assert out.loc[summary, "low"] > 0 and out.loc[summary, "perm_p_holm"] < 0.05
+
+
+def test_null_groups_joint_intervals_cover_zero_at_their_level():
+    # 50 null datasets (same distribution in both groups) of 8 + 8 participants x 6 blocks: the joint
+    # interval, one per dataset and summary, should exclude 0 in about 5% of them. Binomial bound
+    # (common practice): P(X >= 8 | n = 50, p = 0.05) < 0.02 (scipy.stats.binom; Virtanen et al., 2020).
+    rng = np.random.default_rng(17)
+    excluded = {"mean over blocks": 0, "learning slope": 0}
+    for k in range(50):
+        out = joint_effects(_null_curves(rng, n_blocks=6), [("B", "A")], n_permutations=99,
+                            seed=k)
+        for r in out.itertuples():
+            excluded[r.summary] += int(r.low > 0 or r.high < 0)
+    assert stats.binom.sf(7, 50, 0.05) < 0.02
+    assert all(n < 8 for n in excluded.values()), excluded
+
+
+def test_null_groups_study_flags_nothing(lantern):
+    # both groups are the same learners with the same parameter ranges: no group difference exists
+    raw, _ = simulate_participants(lantern, 12, 4, groups={"A": ["count-1", "count-2"], "B": ["count-1", "count-2"]},
+                                   seed=12, block_length=60)
+    res = compare_groups(validate_log(raw, lantern), lantern, models=["count-1"], bayes=False,
+                         metrics=["optimal_rate", "median_rt"], n_permutations=499, seed=4)
+    assert (res.group_effects["perm_p_holm"] >= 0.05).all()
+    joint = res.group_joint
+    assert len(joint) == 4 and ((joint["low"] <= 0) & (joint["high"] >= 0)).all(), joint
+    assert (joint["perm_p_holm"] >= 0.05).all()
+    assert res.group_effects["hdi_adjusted"].isna().all()  # no HDI without the group model
+
+
+def test_the_model_joint_summary_is_the_mean_and_slope_of_the_posterior_block_differences():
+    import arviz as az
+
+    curves = _null_curves(np.random.default_rng(2), n_per_group=4, n_blocks=4)
+    curves = curves[~((curves["group"] == "A") & (curves["block"] == "3"))]  # A has no value in block 3
+    data = model_data(curves, "gain_bits", ["A", "B"], kind="gaussian")
+    cell = np.random.default_rng(3).normal(size=(2, 50, 2, 4))  # (chain, draw, group, block)
+    joint = summarise_joint(data, az.from_dict(posterior={"cell": cell}), [("B", "A")], called=True)
+    row = joint.set_index("summary")
+    diff = (cell[..., 1, :] - cell[..., 0, :])[..., [0, 1, 3]] * data.spread  # common blocks 1, 2, 4
+    slope = np.polyfit([0.0, 1.0, 3.0], diff.reshape(-1, 3).T, 1)[0]  # least squares per draw (numpy)
+    assert row.loc["learning slope", "estimate"] == pytest.approx(slope.mean(), rel=1e-10)
+    assert (row.loc["learning slope", "low"], row.loc["learning slope", "high"]) == pytest.approx(hdi(slope))
+    assert row.loc["mean over blocks", "estimate"] == pytest.approx(diff.mean(), rel=1e-10)
+    assert row.loc["mean over blocks", "prob_positive"] == pytest.approx((diff.mean(axis=-1) > 0).mean())
+    assert (joint["n_blocks"] == 3).all()
+    uncalled = summarise_joint(data, az.from_dict(posterior={"cell": cell}), [("B", "A")], called=False)
+    assert uncalled[["estimate", "low", "high", "prob_positive"]].isna().all().all()
+    # the step takes the posterior's numbers where the model was called, the participants' otherwise
+    out = joint_effects(curves, [("B", "A")], posterior=joint, n_permutations=99, seed=0)
+    assert (out["method"] == POSTERIOR).all() and (out["level"] == 0.94).all()
+    assert out.set_index("summary").loc["learning slope", "estimate"] == pytest.approx(slope.mean())
+    out = joint_effects(curves, [("B", "A")], posterior=uncalled, n_permutations=99, seed=0)
+    assert (out["method"] == PERMUTATION).all() and (~out["called"]).all()
 
 
 @pytest.mark.slow
@@ -193,135 +271,6 @@ def test_permutation_p_values_are_uniform_under_the_null():
     assert stats.kstest(p, "uniform").pvalue > 0.01  # Kolmogorov-Smirnov (common practice)
 
 
-# --------------------------------------------------------------------------- between-group model test
-
-
-def test_groups_from_different_models_differ_and_from_one_mixture_do_not():
-    rng = np.random.default_rng(5)
-
-    def evidence(models):
-        lme = rng.normal(0.0, 1.0, (len(models), 3))
-        lme[np.arange(len(models)), models] += 6.0
-        return lme
-
-    a, b = evidence(np.zeros(15, int)), evidence(np.full(15, 2))
-    prob, log_bf = groups_differ(a, b)
-    assert prob > 0.99 and log_bf > 0  # Rigoux et al. (2014): clearly different frequencies
-    mix = evidence(np.tile([0, 1], 15))
-    prob_same, _ = groups_differ(mix[:15], mix[15:])
-    assert prob_same < 0.2
-    with pytest.raises(UsageError):
-        groups_differ(a, b[:, :2])
-
-
-def test_family_evidence_is_the_log_mean_over_members():
-    lme = np.log(np.array([[1.0, 3.0, 2.0], [4.0, 4.0, 1.0]]))
-    fam = family_evidence(lme, [[0, 1], [2]])
-    assert np.allclose(np.exp(fam), [[2.0, 2.0], [4.0, 1.0]])  # Penny et al. (2010): uniform within family
-
-
-# --------------------------------------------------------------------------- hierarchical model
-
-
-def _rate_curves(rng, effects, n_per_group=6, n_blocks=4, n_trials=100, sd_int=0.3, sd_slope=0.2):
-    """Return binomial curves: logit p = 0.3 t_b + u_i + v_i t_b + effects[group][block]."""
-    t = (np.arange(n_blocks) - (n_blocks - 1) / 2) / (n_blocks - 1)
-    rows = []
-    for g, shift in effects.items():
-        for i in range(n_per_group):
-            u, v = rng.normal(0, sd_int), rng.normal(0, sd_slope)
-            p = 1 / (1 + np.exp(-(0.3 * t + u + v * t + np.asarray(shift))))
-            k = rng.binomial(n_trials, p)
-            rows += [{"participant": f"{g}{i}", "group": g, "session": "1", "block": str(b + 1),
-                      "metric": "optimal_rate", "value": k[b] / n_trials, "n_trials": n_trials}
-                     for b in range(n_blocks)]
-    return pd.DataFrame(rows)
-
-
-def test_fixed_effects_core_matches_the_binomial_glm_mle():
-    import pymc as pm
-    import statsmodels.api as sm
-
-    curves = _rate_curves(np.random.default_rng(2), {"A": [0, 0, 0, 0], "B": [0, 0.3, 0.6, 0.9]})
-    data = model_data(curves, "optimal_rate", ["A", "B"])
-    model = build_model(data, GroupModelSpec(trend="linear", random_effects=False, prior_scale=1e3))
-    with model:
-        fit = pm.find_MAP(progressbar=False)
-    # reference: statsmodels GLM Binomial MLE on the same design (level and slope per group)
-    g = data.group[data.participant]
-    t = data.position[data.block]
-    design = np.column_stack([g == 0, g == 1, (g == 0) * t, (g == 1) * t]).astype(float)
-    glm = sm.GLM(np.column_stack([data.y, data.n - data.y]), design, family=sm.families.Binomial()).fit()
-    assert np.allclose(np.r_[fit["level"], fit["slope"]], glm.params, atol=1e-3)
-
-
-def test_gaussian_core_matches_least_squares_on_log_rt():
-    import pymc as pm
-    import statsmodels.api as sm
-
-    rng = np.random.default_rng(6)
-    rows = [{"participant": f"{g}{i}", "group": g, "session": "1", "block": str(b), "metric": "median_rt",
-             "value": math.exp(-0.5 + 0.1 * (g == "B") * b + rng.normal(0, 0.1)), "n_trials": 80}
-            for g in "AB" for i in range(5) for b in (1, 2, 3)]
-    data = model_data(pd.DataFrame(rows), "median_rt", ["A", "B"])
-    model = build_model(data, GroupModelSpec(random_effects=False, prior_scale=1e3))
-    with model:
-        fit = pm.find_MAP(progressbar=False)
-    # reference: statsmodels OLS of log RT on group x block cell indicators (least squares, common practice)
-    g, b = data.group[data.participant], data.block
-    design = np.column_stack([(g == i) & (b == j) for i in range(2) for j in range(3)]).astype(float)
-    log_rt = data.y * data.spread + data.centre
-    ols = sm.OLS(log_rt, design).fit()
-    assert np.allclose((fit["cell"] * data.spread + data.centre).ravel(), ols.params, atol=1e-4)
-
-
-def test_model_structure_follows_the_spec():
-    curves = _rate_curves(np.random.default_rng(1), {"A": [0, 0, 0], "B": [0, 0, 0]}, n_blocks=3)
-    data = model_data(curves, "optimal_rate", ["A", "B"])
-    linear = build_model(data, GroupModelSpec(trend="linear", parameterisation="non-centred"))
-    assert {"level", "slope", "cell", "sd_intercept", "intercept_z", "sd_block_slope",
-            "block_slope_z"} <= set(linear.named_vars)
-    centred = build_model(data, GroupModelSpec())
-    assert "intercept_z" not in centred.named_vars and "block_slope_z" in centred.named_vars
-    one_block = model_data(curves[curves["block"] == "1"], "optimal_rate", ["A", "B"])
-    assert "block_slope" not in build_model(one_block).named_vars
-    assert data.obs_per_participant().tolist() == [300.0] * 12
-    with pytest.raises(UsageError):
-        GroupModelSpec(trend="quadratic")
-
-
-def test_hdi_is_arviz_hdi_of_the_same_draws():
-    import arviz as az
-
-    draws = np.random.default_rng(0).gamma(2.0, size=(2, 500))
-    assert np.allclose(hdi(draws), az.hdi(draws.ravel(), hdi_prob=0.94))  # ArviZ (reference library; Kumar et al., 2019)
-
-
-def test_group_model_finds_a_late_difference_and_no_null_difference():
-    # One small run, three groups: B is the reference's twin (null), C differs
-    # in the last two blocks by +1 on the logit scale.
-    curves = _rate_curves(np.random.default_rng(8), {"A": [0, 0, 0, 0], "B": [0, 0, 0, 0],
-                                                     "C": [0, 0, 1.0, 1.0]})
-    data = model_data(curves, "optimal_rate", ["A", "B", "C"])
-    # A short run: the estimates are checked here, with limits loosened for
-    # 2 chains x 500 draws; the gate itself is foretell.hierarchical.sampling's.
-    short = Gate(rhat_max=1.05, ess_bulk_per_chain=50, pareto_k_max=math.inf)
-    fit = fit_group_model(data, [("B", "A"), ("C", "A")], draws=500, tune=500, chains=2, seed=3,
-                          parameterisation="centred", gate=short)
-    assert fit.diagnostics.ok, fit.diagnostics.reasons
-    eff = fit.effects.set_index(["contrast", "block"])
-    excludes_zero = (eff["hdi_low"] > 0) | (eff["hdi_high"] < 0)
-    assert not excludes_zero["B-A"].any()
-    assert excludes_zero["C-A"].loc[["3", "4"]].all()
-    assert (eff.loc["C-A"].loc[["3", "4"], "prob_positive"] > 0.97).all()
-    curves_c = fit.group_curves[fit.group_curves["group"] == "C"]
-    assert ((curves_c["hdi_low"] < curves_c["mean"]) & (curves_c["mean"] < curves_c["hdi_high"])).all()
-    # a posterior that fails the gate says nothing
-    quiet_curves, quiet_effects = summarise_group_model(data, fit.posterior, [("C", "A")], called=False)
-    assert quiet_effects[["diff_mean", "hdi_low", "hdi_high", "prob_positive"]].isna().all().all()
-    assert not quiet_curves["called"].any() and quiet_curves["mean"].isna().all()
-
-
 # --------------------------------------------------------------------------- the whole comparison
 
 
@@ -330,12 +279,13 @@ def study(lantern):
     raw, _ = simulate_participants(lantern, 8, 3, groups={"A": ["count-0"], "B": ["count-2"]}, seed=3,
                                    block_length=60)
     log = validate_log(raw, lantern)
-    return log, fit_participants(log, lantern, ["count-0", "count-2"], seed=0)
+    return log, fit(log, lantern, models=["count-0", "count-2"], seed=0)
 
 
 def test_compare_groups_without_the_bayesian_models(study, lantern):
-    log, tables = study
-    res = compare_groups(log, lantern, tables, bayes=False, n_permutations=199)
+    log, fitted = study
+    res = compare_groups(log, lantern, fit=fitted, bayes=False, n_permutations=199)
+    assert isinstance(res, GroupResult) and res.step == "groups" and res.model_ids == ["count-0", "count-2"]
     assert set(res.curves["metric"]) == {"accuracy", "optimal_rate", "gain_bits", "inv_temp", "median_rt",
                                          "depth"}
     assert (res.group_effects["contrast"] == "B-A").all() and res.group_effects["called"].isna().all()
@@ -343,41 +293,81 @@ def test_compare_groups_without_the_bayesian_models(study, lantern):
     assert models.loc[("model", "count-2"), "freq_group"] > models.loc[("model", "count-2"), "freq_reference"]
     assert set(res.group_params["parameter"]) <= {"inv_temp", "lapse"}
     assert any("bayes=False" in n for n in res.notes)
-    assert {"curve_optimal_rate", "context_learning"} <= set(res.figures)
-    fig = res.figures["curve_optimal_rate"]
+    assert set(res.tables()) == {"curves", "group_curves", "group_effects", "group_joint", "group_models",
+                                 "group_params", "group_diagnostics", "context_learning"}
+    assert set(res.group_joint["metric"]) == set(res.curves["metric"])
+    assert (res.group_joint["method"] == PERMUTATION).all()
+    assert res.texts() == {"summary.txt": "".join(f"{n}\n" for n in res.notes)}
+
+
+def test_figures_are_drawn_only_when_asked_for(study, lantern):
+    log, fitted = study
+    res = compare_groups(log, lantern, fit=fitted, bayes=False, n_permutations=9, metrics=["optimal_rate"])
+    makers = res.figure_makers()
+    assert set(makers) == {"curve_optimal_rate", "context_learning"}
+    assert all(callable(draw) for draw in makers.values())
+    fig = makers["curve_optimal_rate"]()
     assert fig.axes[0].get_ylabel() == "optimal_rate (share of trials)"
     assert fig.axes[0].get_title() == "Guesses of the most likely next symbol by block"
-    assert set(res.tables()) == {"curves", "group_curves", "group_effects", "group_models", "group_params",
-                                 "group_diagnostics", "context_learning"}
+    assert res.files() == sorted([f"{n}.csv" for n in res.tables()] + ["summary.txt"]
+                                 + [f"figures/{n}.png" for n in makers])
+
+
+def test_the_curve_figure_says_its_model_bands_are_unadjusted():
+    from foretell.curves import METRICS
+    from foretell.plots.groups import curve_figure
+
+    table = pd.DataFrame({"group": ["A", "A"], "session": "1", "block": ["1", "2"], "metric": "accuracy",
+                          "participant_mean": [0.5, 0.6], "mean": [0.52, 0.58], "hdi_low": [0.4, 0.5],
+                          "hdi_high": [0.6, 0.7]})
+    legend = [t.get_text() for t in curve_figure(table, METRICS["accuracy"]).axes[0].get_legend().get_texts()]
+    assert legend == ["A: mean of participants", "A: model, 94% HDI per block (unadjusted)"]
 
 
 def test_one_group_and_small_groups_get_curves_only(study, lantern):
-    log, tables = study
+    log, fitted = study
     raw = log.frame[["participant", "group", "session", "block", "trial", "stimulus", "response", "rt"]]
-    solo = compare_groups(validate_log(raw.assign(group="solo"), lantern), lantern, None, n_permutations=99)
-    assert solo.group_effects.empty and any("no group inference" in n for n in solo.notes)
-    assert len(solo.curves)
+    solo = compare_groups(validate_log(raw.assign(group="solo"), lantern), lantern, models=["count-0"],
+                          n_permutations=99)
+    assert solo.group_effects.empty and solo.group_joint.empty and any("no group inference" in n for n in solo.notes)
+    assert "gain_bits" in set(solo.curves["metric"])  # no fit given: the guesses were fitted here
+    assert solo.model_ids == ["count-0"]
     few = raw[~raw["participant"].isin(["p02", "p04", "p06"])]  # B keeps one participant
-    res = compare_groups(validate_log(few, lantern), lantern, None, n_permutations=99)
+    res = compare_groups(validate_log(few, lantern), lantern, models=["count-0"], n_permutations=99)
     assert res.group_effects.empty
     assert any("group B has 1 participant" in n for n in res.notes)
-    with pytest.raises(UsageError):
-        compare_groups(log, lantern, tables, reference="Z", bayes=False)
-    with pytest.raises(UsageError):
-        compare_groups(log, lantern, None, metrics=["gain_bits"], bayes=False)
+    for bad in ({"reference": "Z"}, {"metrics": ["rt_surprise_slope"]}, {"chains": 1}, {"trend": "cubic"},
+                {"n_permutations": 0}):
+        with pytest.raises(UsageError):
+            compare_groups(log, lantern, fit=fitted, **bad)
+
+
+def test_participants_the_fit_left_out_are_left_out_with_a_note(study, lantern):
+    log, _ = study
+    raw = log.frame[["participant", "group", "session", "block", "trial", "stimulus", "response", "rt"]]
+    missed = validate_log(raw.assign(response=raw["response"].where(raw["participant"] != "p03", "")), lantern)
+    fitted = fit(missed, lantern, models=["count-0"], seed=0)
+    assert list(fitted.excluded["participant"]) == ["p03"]
+    res = compare_groups(missed, lantern, fit=fitted, bayes=False, n_permutations=9)
+    assert "p03" not in set(res.curves["participant"])
+    assert any(n.startswith("participant p03 left out, as in the fit") for n in res.notes)
 
 
 def test_compare_groups_runs_the_model_and_reports_its_diagnostics(study, lantern):
-    log, tables = study
-    res = compare_groups(log, lantern, tables, metrics=["optimal_rate"], draws=100, tune=100, chains=2,
+    log, fitted = study
+    res = compare_groups(log, lantern, fit=fitted, metrics=["optimal_rate"], draws=100, tune=100, chains=2,
                          n_permutations=99, seed=1)
     diag = res.group_diagnostics.iloc[0]
     assert (diag["metric"], diag["likelihood"], diag["trend"]) == ("optimal_rate", "binomial", "categorical")
-    assert diag["parameterisation_reason"].startswith("auto")
+    assert diag["parameterisation_reason"].startswith("auto: mean SE")  # the strength of the data decides
     called = bool(diag["ok"])
     effects = res.group_effects
     assert (effects["called"] == called).all()
     assert effects["diff_mean"].notna().all() == called
+    assert (effects["hdi_adjusted"] == False).all() if called else effects["hdi_adjusted"].isna().all()  # noqa: E712
+    joint = res.group_joint
+    assert (joint["method"] == (POSTERIOR if called else PERMUTATION)).all() and (joint["called"] == called).all()
+    assert joint["low"].notna().all() and (joint["low"] < joint["high"]).all()
     if not called:  # a 2 x 100 run rarely passes the gate: then it says so
         assert any("optimal_rate: hierarchical model not called" in n for n in res.notes)
 
@@ -392,7 +382,7 @@ def test_reaction_designs_use_accuracy_rt_and_the_rt_cost_of_surprise():
         frames.append(_raw(task, x, press, block=np.repeat([1, 2, 3], 30), participant=f"p{i}",
                            group="AB"[i % 2], rt=np.round(rng.uniform(0.3, 0.6, 90), 3)))
     log = validate_log(pd.concat(frames, ignore_index=True), task)
-    res = compare_groups(log, task, None, bayes=False, n_permutations=99)
+    res = compare_groups(log, task, bayes=False, n_permutations=99)  # fit does not apply: none is made
     assert set(res.curves["metric"]) == {"accuracy", "median_rt", "rt_surprise_slope"}
     assert res.context_learning.empty
     assert set(res.group_effects["metric"]) == {"accuracy", "median_rt", "rt_surprise_slope"}

@@ -160,9 +160,9 @@ def test_missing_required_column(tmp_path):
 
 
 def test_missing_column_hints_at_a_near_name(tmp_path):
-    lines = [GOOD[0].replace("response", "Response")] + GOOD[1:]
+    lines = [GOOD[0].replace("response", "Respons")] + GOOD[1:]
     (problem,) = problems_of(write(tmp_path, lines))
-    assert problem.column == "response" and "'Response'" in problem.message
+    assert problem.column == "response" and "closest is 'Respons'" in problem.message
 
 
 def test_unknown_symbols_list_first_lines(tmp_path):
@@ -471,7 +471,9 @@ def test_summary_counts_and_totals(tmp_path):
                                              "rt_missing", "rt_fast", "rt_slow", "rt_usable"]]
     assert rows.loc["p01"].tolist() == [2, 3, 3, 1, 0, 1, 0, 1]
     assert rows.loc["p02"].tolist() == [1, 1, 2, 0, 1, 0, 1, 0]
-    assert rows.loc["all"].tolist() == (rows.loc["p01"] + rows.loc["p02"]).tolist()
+    total = rows.loc["p01"] + rows.loc["p02"]
+    total[["sessions", "blocks"]] = [2, 3]  # distinct sessions and session x block pairs of the log
+    assert rows.loc["all"].tolist() == total.tolist()
 
 
 @pytest.mark.parametrize("column", ["participant", "group"])
@@ -674,3 +676,208 @@ def test_measure_columns_are_carried_over_as_numbers(tmp_path):
     assert "missing measure column 'p3_amp'" in missing.message
     with pytest.raises(UsageError, match="shadow"):
         load_log(write(tmp_path, GOOD, "s.csv"), TASK, measures=["rt_ok"])
+
+
+# --- issue 20: nothing silently wrong ------------------------------------------
+
+def test_a_stimulus_the_task_cannot_produce_is_warned(tmp_path):
+    task = Task.from_dict({"name": "alt", "symbols": ["a", "b"], "contexts": [
+        {"past": ["a"], "next": {"a": 0.0, "b": 1.0}}, {"past": ["b"], "next": {"a": 0.5, "b": 0.5}}]})
+    lines = ["participant,block,trial,stimulus,response",
+             "p02,1,1,a,a", "p02,1,2,b,a",
+             "p01,1,1,b,a", "p01,1,2,a,a", "p01,1,3,a,a", "p01,1,4,a,b"]
+    log = load_log(write(tmp_path, lines), task)
+    (warning,) = [w for w in log.warnings if "probability 0" in w]
+    assert "participant p01" in warning and "line 6" in warning and "context 'a'" in warning
+    assert "2 such trials" in warning and "p02" not in warning
+
+
+@pytest.mark.parametrize("names", [["RT", "Group", "Session"], [" rt ", "group", "SESSION "]])
+def test_column_names_in_another_case_or_with_spaces_are_read(tmp_path, names):
+    rt, group, session = names
+    lines = [f"participant,{group},{session},block,trial,stimulus,response,{rt}",
+             "p01,young,2,1,1,a,b,0.5", "p01,young,2,1,2,b,b,0.6"]
+    log = load_log(write(tmp_path, lines), TASK)
+    frame = log.frame
+    assert frame["rt"].tolist() == [0.5, 0.6] and frame["group"].tolist() == ["young", "young"]
+    assert frame["session"].tolist() == [2, 2]
+    for theirs, canonical in zip(names, ("rt", "group", "session")):
+        if theirs != canonical:
+            assert f"column {theirs!r} read as {canonical!r}" in log.warnings
+    assert not any("ignored" in w for w in log.warnings)
+
+
+def test_a_look_alike_beside_the_canonical_column_is_named(tmp_path):
+    lines = [HEADER + ",RT", "p01,1,1,1,a,b,0.5,512"]
+    log = load_log(write(tmp_path, lines), TASK)
+    (warning,) = [w for w in log.warnings if "'RT'" in w]
+    assert "looks like 'rt'" in warning and "'rt' was read" in warning
+
+
+def test_a_look_alike_of_a_mapped_column_is_named(tmp_path):
+    lines = ["participant,block,trial,stimulus,guess,Response", "p01,1,1,a,b,c"]
+    log = load_log(write(tmp_path, lines), TASK, columns={"response": "guess"})
+    assert "column 'Response' looks like 'response' but 'guess' was read; 'Response' was ignored" in log.warnings
+    assert log.frame["response"].tolist() == ["b"]
+
+
+def test_two_look_alikes_are_a_problem(tmp_path):
+    lines = ["participant,block,trial,stimulus,response,RT,Rt", "p01,1,1,a,b,0.5,0.6"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert problem.column == "RT" and "'RT', 'Rt'" in problem.message and "--map rt=" in problem.message
+
+
+def test_a_mapped_name_with_stray_spaces(tmp_path):
+    from foretell.cli.main import main
+
+    lines = [" participant ,block,trial,stimulus,response", "p01,1,1,a,b"]
+    path = write(tmp_path, lines)
+    for columns in ({"participant": " participant "}, {"participant": "participant"}, None):
+        assert load_log(path, TASK, columns=columns).frame["participant"].tolist() == ["p01"]
+    task_file = tmp_path / "t.toml"
+    task_file.write_text('name = "t"\nsymbols = ["a", "b", "c"]\n')
+    assert main(["check", str(path), "--task", str(task_file), "--map", "participant= participant"]) == 0
+
+
+def test_a_missing_column_suggestion_is_quoted_for_the_shell(tmp_path):
+    lines = ["participant,block,trial,stimulus,the response", "p01,1,1,a,b"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert "--map 'response=the response'" in problem.message
+
+
+def test_participants_with_rts_in_another_unit_are_named(tmp_path):
+    lines = [HEADER] + [f"p0{p},1,1,{t},a,b,{512 + t if p in (3, 5) else 0.5 + t / 100}"
+                        for p in range(1, 7) for t in (1, 2, 3)]
+    log = load_log(write(tmp_path, lines), TASK)
+    (warning,) = [w for w in log.warnings if "median RT" in w]
+    assert "participants p03, p05" in warning and "milliseconds" in warning
+    for p in ("p01", "p02", "p04", "p06"):
+        assert p not in warning
+    seconds = load_log(write(tmp_path, lines, "ms.csv"), TASK, rt_unit="ms")
+    (warning,) = [w for w in seconds.warnings if "median RT" in w]
+    assert "participants p01, p02, p04, p06" in warning and "seconds" in warning
+
+
+@pytest.mark.parametrize("first", ["sep=,", "# exported by the lab's stimulus program"])
+def test_a_line_before_the_header_is_one_problem(tmp_path, first):
+    lines = [first] + GOOD * 1 + [f"p03,1,1,{t},a,a,0.5" for t in range(1, 200)]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert problem.line == 1 and "header seems to be on line 2" in problem.message
+
+
+@pytest.mark.parametrize("column,cell,fragment", [
+    ("trial", '"1,001"', "thousands separator"), ("rt", '"1,001"', "thousands separator"),
+    ("rt", '"0,5"', "decimal point")])
+def test_commas_in_numbers_name_the_cause(tmp_path, column, cell, fragment):
+    row = {"participant": "p01", "session": "1", "block": "1", "trial": "2", "stimulus": "a",
+           "response": "a", "rt": "0.5"}
+    row[column] = cell
+    lines = [HEADER, "p01,1,1,1,a,a,0.5", ",".join(row[c] for c in HEADER.split(","))]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (3, column) and fragment in problem.message
+    if fragment == "thousands separator":
+        assert "decimal point" not in problem.message or column == "rt"
+
+
+@pytest.mark.parametrize("data,fragment", [
+    (b"\x1f\x8b\x08\x00" + bytes(range(200)), "gzip"),
+    (b"PK\x03\x04" + bytes(range(200)), "zip archive"),
+    (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(range(200)), "Excel")], ids=["gzip", "xlsx", "xls"])
+def test_compressed_and_spreadsheet_files_are_named(tmp_path, data, fragment):
+    path = tmp_path / "log.csv"
+    path.write_bytes(data)
+    (problem,) = problems_of(path)
+    assert fragment in problem.message and "Latin-1" not in problem.message and "CSV" in problem.message
+
+
+def test_ids_longer_than_the_limit_are_refused_up_front(tmp_path):
+    from foretell.labels import MAX_LABEL_LENGTH
+
+    long_id = "p" * 5000
+    lines = [HEADER, f"{long_id},1,1,1,a,a,0.5", "p02,1,1,1,a,a,0.5"]
+    (problem,) = problems_of(write(tmp_path, lines))
+    assert (problem.line, problem.column) == (2, "participant")
+    assert f"at most {MAX_LABEL_LENGTH} characters" in problem.message and "5000" in problem.message
+    assert len(str(problem)) < 400
+    assert MAX_LABEL_LENGTH == 64
+
+
+def test_load_log_takes_a_task_name_or_file(tmp_path):
+    lines = ["participant,block,trial,stimulus,response", "p01,1,1,up,down"]
+    log = load_log(write(tmp_path, lines), "tide-gauge")
+    assert log.task.name == "tide-gauge" and log.frame["response_idx"].tolist() == [1]
+
+
+def test_arguments_are_refused_in_words(tmp_path):
+    path = write(tmp_path, GOOD)
+    with pytest.raises(UsageError, match="columns must be a mapping"):
+        load_log(path, TASK, columns=["participant", "block"])
+    with pytest.raises(UsageError, match="measures must be a list"):
+        load_log(path, TASK, measures="p3_amp")
+    with pytest.raises(UsageError, match="did you mean 'ms'"):
+        load_log(path, TASK, rt_unit="mss")
+    with pytest.raises(UsageError, match="DataFrame"):
+        validate_log(GOOD, TASK)
+    with pytest.raises(UsageError, match="RTScreen"):
+        load_log(path, TASK, screen=(0.1, 2))
+    with pytest.raises(UsageError, match="log file"):
+        load_log(3, TASK)
+    with pytest.raises(UsageError, match="validated log"):
+        log_summary(pd.DataFrame())
+
+
+def test_the_all_row_counts_distinct_sessions_and_blocks(tmp_path):
+    lines = ["participant,session,block,trial,stimulus,response",
+             "p01,1,1,1,a,a", "p01,1,2,2,a,a", "p02,1,1,1,a,a", "p02,1,2,2,a,a", "p02,2,1,1,a,a"]
+    summary = log_summary(load_log(write(tmp_path, lines), TASK)).set_index("participant")
+    assert summary.loc["p01", ["sessions", "blocks"]].tolist() == [1, 2]
+    assert summary.loc["p02", ["sessions", "blocks"]].tolist() == [2, 3]
+    assert summary.loc["all", ["sessions", "blocks", "trials"]].tolist() == [2, 3, 5]
+
+
+def test_one_ignored_column_is_singular(tmp_path):
+    log = load_log(write(tmp_path, [HEADER + ",condition", "p01,1,1,1,a,a,0.5,x"]), TASK)
+    assert "column 'condition' is not part of the log format and was ignored" in log.warnings
+
+
+# --- files of other layouts and what a log records of its files ---------------------------------
+
+def test_whole_milliseconds_read_as_exactly_the_seconds_they_write(tmp_path):
+    lines = [HEADER] + [f"p01,1,1,{t},a,a,{ms}" for t, ms in enumerate((523, 1, 999, 1234, 70), start=1)]
+    log = load_log(write(tmp_path, lines), TASK, rt_unit="ms")
+    assert log.frame["rt"].tolist() == [0.523, 0.001, 0.999, 1.234, 0.07]
+
+
+def test_one_file_records_itself_as_the_source(tmp_path):
+    path = write(tmp_path, GOOD)
+    log = load_log(path, TASK)
+    assert log.sources == (str(path),) and log.mapped == ()
+    assert validate_log(pd.read_csv(path), TASK).sources == ()
+
+
+@pytest.mark.parametrize("name,personal", [("expName", False), ("file_name", False), ("stimName", False),
+                                           ("first_name", True), ("Name", True), ("participant_email", True)])
+def test_names_of_things_are_not_personal_data(tmp_path, name, personal):
+    log = load_log(write(tmp_path, [HEADER + f",{name}", "p01,1,1,1,a,a,0.5,x"]), TASK)
+    assert any("personal data" in w for w in log.warnings) is personal
+
+
+def test_a_spreadsheet_reports_its_row_numbers(tmp_path):
+    pytest.importorskip("openpyxl")
+    path = tmp_path / "log.xlsx"
+    table = pd.DataFrame({"participant": ["p01", None, "p01", "p01"], "block": [1, None, 1, 1],
+                          "trial": [1, None, 2, 3], "stimulus": ["a", None, "b", "z"],
+                          "response": ["a", None, "b", "c"], "rt": [0.5, None, 0.6, 0.7]})
+    table.to_excel(path, index=False)
+    (problem,) = problems_of(path)
+    assert (problem.line, problem.column) == (5, "stimulus") and "unknown symbol 'z'" in problem.message
+    table.loc[3, "stimulus"] = "c"
+    table.to_excel(path, index=False)
+    assert load_log(path, TASK).frame["trial"].tolist() == [1, 2, 3]
+
+
+def test_a_line_above_a_header_of_mapped_names_is_named(tmp_path):
+    lines = ["sep=,", "subj,blk,trl,stim,resp,rt", "p01,1,1,a,a,0.5", "p01,1,2,b,b,0.5"]
+    columns = {"participant": "subj", "block": "blk", "trial": "trl", "stimulus": "stim", "response": "resp"}
+    (problem,) = problems_of(write(tmp_path, lines), columns=columns)
+    assert problem.line == 1 and "header seems to be on line 2" in problem.message

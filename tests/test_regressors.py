@@ -13,7 +13,9 @@ from foretell.errors import UsageError
 from foretell.learners import Counting, TreeMixture
 from foretell.logs import validate_log
 from foretell.models import parse_model
-from foretell.regressors import REGRESSORS, learner_values, regressors, stack_tables
+from foretell.models import model_specs
+from foretell.measure import choose_measure
+from foretell.regressors import REGRESSORS, kept_by_fit, learner_values, regressors, stack_tables
 from foretell.simulate import simulate_participants
 from foretell.tasks import Task
 
@@ -73,7 +75,7 @@ def test_learner_values_come_from_fits_then_fixed(tide):
                          "alpha": [np.nan]})
     assert learner_values(spec, "p01", fits=fits) == ({"leak": 0.2}, "fits")
     assert learner_values(spec, "p02", fits=fits, fixed={"leak": 0.1}) == ({"leak": 0.1}, "fixed")
-    assert learner_values(spec, "p02", fits=fits)[1] == "profile"
+    assert learner_values(spec, "p02", fits=fits)[1] == "held_out"
     plain = parse_model("count-1", tide)
     assert learner_values(plain, "p02") == ({}, "default")
 
@@ -84,8 +86,8 @@ def test_a_free_leak_needs_a_value_or_a_score(small, tide):
     table = regressors(small, tide, ["count-1-leak"], fixed={"leak": 0.3})
     assert (table["leak"] == 0.3).all() and (table["params_from"] == "fixed").all()
     picked = regressors(small, tide, ["count-1-leak"], leak_grid=(0.0, 0.5),
-                        score=lambda pid, cands: np.array([0.0, 1.0]))
-    assert (picked["leak"] == 0.5).all() and (picked["params_from"] == "profile").all()
+                        score=lambda pid, model, cands: np.array([0.0, 1.0 if model == "count-1-leak" else -1.0]))
+    assert (picked["leak"] == 0.5).all() and (picked["params_from"] == "held_out").all()
 
 
 def test_symbols_only_task_loads_and_refuses_models_needing_the_source():
@@ -120,3 +122,48 @@ def test_batches_of_participants_stack_to_the_whole_table(tide):
     stacked = stack_tables(parts)
     pd.testing.assert_frame_equal(stacked, whole)  # values, dtypes and category order
     assert list(stacked["context"].cat.categories) == list(whole["context"].cat.categories)
+
+
+def test_participants_a_fit_left_out_are_named_and_masked(small):
+    excluded = pd.DataFrame({"participant": ["p02"], "group": ["g"], "reason": ["every guess missed"]})
+    keep, notes = kept_by_fit(small, excluded)
+    assert (keep == (small.frame["participant"] != "p02").to_numpy()).all()
+    assert notes == ["participant p02 left out, as in the fit: every guess missed"]
+    assert kept_by_fit(small, None)[0].all() and kept_by_fit(small, None)[1] == []
+    with pytest.raises(UsageError, match="every participant"):
+        kept_by_fit(small, pd.concat([excluded, excluded.assign(participant=["p01"])]))
+
+
+def test_trials_left_out_of_a_measure_are_counted_by_reason(small, tide):
+    specs = model_specs(["count-2"], tide)
+    chosen = choose_measure(small, tide, specs, "rt", small.frame["rt"].to_numpy(float))
+    frame = small.frame
+    first = frame.groupby(["participant", "session"]).cumcount().to_numpy() < 2  # warm-up of depth 2
+    screened = ~frame["rt_ok"].to_numpy()
+    assert ((chosen.reason == 1) == screened).all()  # screened first, then warm-up
+    assert ((chosen.reason == 2) == (first & ~screened)).all()
+    assert chosen.main == "entropy" and chosen.log_transform and chosen.slope_name == "ms_per_bit"
+    with pytest.raises(UsageError):
+        choose_measure(small, tide, specs, "rt", chosen.values, names=["prev_correct"])  # not in bits
+
+
+def test_the_baseline_columns_span_the_time_on_task_terms(small, tide):
+    specs = model_specs(["count-1"], tide)
+    chosen = choose_measure(small, tide, specs, "rt", small.frame["rt"].to_numpy(float))
+    assert chosen.baseline == ("blocks", "trial_spline", "prev_correct")
+    kept = chosen.reason == 0
+    z = chosen.nuisance[kept]  # 4 spline columns and prev_correct: centred, uncorrelated, unit variance
+    assert z.shape[1] == 5
+    np.testing.assert_allclose(z.T @ z / kept.sum(), np.eye(5), atol=1e-9)
+    frame = small.frame
+    position = frame.groupby(["participant", "session"]).cumcount().to_numpy()
+    right = (frame["response_idx"] == frame["stimulus_idx"]).to_numpy() & ~frame["missed"].to_numpy()
+    previous = np.where(position > 0, np.r_[True, right[:-1]], True).astype(float)
+    raw = np.column_stack([np.ones(len(frame)), np.log1p(position), previous])[kept]
+    span = np.column_stack([np.ones(kept.sum()), z])
+    np.testing.assert_allclose(span @ np.linalg.lstsq(span, raw, rcond=None)[0], raw, atol=1e-8)  # in the span
+    rows = slice(0, int((frame["participant"] == "p01").sum()))
+    cols = [{"entropy": np.ones(rows.stop)}]
+    design = chosen.design(rows, cols)
+    assert design.dummies == 1 and design.learners.shape[2] == 1 + 1 + 1 + 5  # 1, entropy, block 2, baseline
+    assert design.runs[0] and not design.runs[1:].any()

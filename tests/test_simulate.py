@@ -51,6 +51,15 @@ def test_same_seed_same_frames_and_canonical_format(lantern):
     assert truth.inv_temp.between(0.5, 4.0).all() and truth.lapse.between(0.01, 0.06).all()
 
 
+def test_a_participant_does_not_depend_on_how_many_others_are_simulated(lantern):
+    few, few_truth = simulate_participants(lantern, 2, 1, models=["count-1", "count-0"], seed=8)
+    many, many_truth = simulate_participants(lantern, 5, 1, models=["count-1", "count-0"], seed=8)
+    pd.testing.assert_frame_equal(few, many[many["participant"].isin(["p01", "p02"])].reset_index(drop=True))
+    pd.testing.assert_frame_equal(few_truth, many_truth.iloc[:2])
+    generator, _ = simulate_participants(lantern, 2, 1, models=["count-1"], seed=np.random.default_rng(8))
+    assert generator["participant"].nunique() == 2  # a Generator seeds the run too
+
+
 def test_probability_matching_reproduces_the_source(compass):
     # inv_temp = 1, lapse = 0: guesses are drawn from the learner's prediction (probability
     # matching; common practice); with the oracle of an i.i.d. source the guess frequencies

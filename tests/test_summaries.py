@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from foretell.compare import lookalikes, selection, selection_blocks, winners
-from foretell.models import parse_model
+from foretell.compare import selection, selection_blocks, winners
+from foretell.models import lookalikes, parse_model
 from foretell.text import number, plural
 from foretell.summaries import (
     BOR_MAX,
@@ -90,12 +90,32 @@ def test_summary_names_the_criterion_the_blocks_and_the_lookalikes():
     assert "count-task left out: identical to count-0 on this task" in text
     assert any(line.startswith("group g (3 participants): clear winner: count-0") for line in lines)
     by_block = next(line for line in lines if "by block" in line)
-    assert "block 1: count-0 (pxp 0.90, BOR 0.05)" in by_block
+    assert "block 1: ahead, not clear: count-0 (pxp 0.90 < 0.95, BOR 0.05)" in by_block
     assert "block 2: none stands out (top pxp 0.40, BOR 0.70)" in by_block
     assert "best" not in by_block  # no counts of per-participant winners here
     own = next(line for line in lines if "own best model" in line)
     assert "count-0 2, count-1 1" in own and "1 of 3 participants" in own
     assert "BIC" in summary_text(_winners(["count-0"], ["strong"]), _selection([0.97, 0.03], 0.01))
+
+
+def test_block_lines_word_a_leader_by_the_same_rule_as_the_whole_session():
+    # A block whose leader has protected exceedance 0.54 among 10 models stands out (bar 0.5) but is
+    # not clear (< 0.95): the block line must say so in the session verdict's words, not name the
+    # model bare as if it stood out; a block at 0.97 is a clear winner; one at 0.40 has no leader.
+    rest = lambda top: [top] + [(1 - top) / 9] * 9  # noqa: E731
+    blocks = pd.concat([_selection(rest(0.54), 0.01, group="g", block="1"),
+                        _selection(rest(0.97), 0.01, group="g", block="2"),
+                        _selection(rest(0.40), 0.01, group="g", block="3")])
+    session = _selection(rest(0.54), 0.01, group="g")
+    text = summary_text(_winners(["count-0"], ["strong"]), session, blocks)
+    by_block = next(line for line in text.splitlines() if "by block" in line)
+    parts = dict(part.split(": ", 1) for part in by_block.split("by block: ")[1].split("; "))
+    for block, words in zip(["1", "2", "3"], ["ahead, not clear: count-0", "clear winner: count-0",
+                                             "none stands out"]):
+        assert parts[f"block {block}"].startswith(words), parts
+    status, _, whole = verdict(session, "model")
+    assert status == "ahead" and whole.startswith("ahead, not clear: count-0")
+    assert "(pxp 0.54 < 0.95, BOR 0.01)" in parts["block 1"] and ">= 0.95" in parts["block 2"]
 
 
 def test_an_invented_control_group_is_not_led_by_a_lookalike(compass):

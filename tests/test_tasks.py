@@ -355,3 +355,82 @@ def test_counts_use_the_singular() -> None:
     text = two_state(0.2, 0.6).describe()
     assert "2 symbols" in text and "2 contexts" in text
     assert "1 context," in load_task(TASKS / "compass-fair.toml").describe()
+
+
+# ---- issue 20: typos, byte-order marks, names that shadow, arguments in words -----------
+BODY = '[[contexts]]\npast = []\nnext = {a = 0.5, b = 0.5}\n'
+
+
+@pytest.mark.parametrize("text,key,line,char,suggestion", [
+    (GOOD_HEAD + "[[contexs]]\npast = []\nnext = {a = 0.5, b = 0.5}\n", "contexs", 3, 3, "contexts"),
+    (GOOD_HEAD + "block_lenght = 100\n" + BODY, "block_lenght", 3, 1, "block_length"),
+    (GOOD_HEAD + 'symbol = ["a", "b"]\n' + BODY, "symbol", 3, 1, "symbols"),
+    (GOOD_HEAD + '[[contexts]]\npast = []\n  nxt = {a = 0.5, b = 0.5}\n', "contexts[1].nxt", 5, 3, "next"),
+])
+def test_unknown_keys_are_refused_with_a_suggestion(tmp_path: Path, text: str, key: str, line: int,
+                                                     char: int, suggestion: str) -> None:
+    path = write(tmp_path, text)
+    with pytest.raises(TaskError) as err:
+        load_task(path)
+    (problem,) = [p for p in err.value.problems if "unknown key" in p.message]
+    assert (problem.column, problem.line, problem.char) == (key, line, char)
+    assert f"did you mean '{suggestion}'?" in problem.message
+    assert str(problem).startswith(f"{path}:{line}:{char}: ")
+
+
+def test_a_byte_order_mark_is_accepted(tmp_path: Path) -> None:
+    path = tmp_path / "task.toml"
+    path.write_bytes(b"\xef\xbb\xbf" + (GOOD_HEAD + BODY).encode("utf-8"))
+    assert load_task(path).symbols == ("a", "b")
+
+
+def test_a_folder_never_hides_a_shipped_task(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "lantern-relay").mkdir()  # e.g. an output folder named after the task
+    task = load_task("lantern-relay")
+    assert task.path == str(shipped_tasks()["lantern-relay"])
+    assert any("folder" in note and "shipped" in note for note in task.notes)
+    assert "shipped" in task.describe()
+
+
+def test_a_file_named_like_a_shipped_task_is_used_and_said(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "tide-gauge").write_text(GOOD_HEAD + BODY)
+    task = load_task("tide-gauge")
+    assert task.symbols == ("a", "b")
+    (note,) = task.notes
+    assert "tide-gauge" in note and "not the task shipped" in note
+    assert note in task.describe()
+    assert load_task(TASKS / "tide-gauge.toml").notes == ()
+
+
+def test_arguments_are_checked_in_words(tide: Task) -> None:
+    from foretell.errors import UsageError
+
+    with pytest.raises(UsageError, match="whole number >= 0"):
+        tide.sample(-5, seed=0)
+    with pytest.raises(UsageError, match="symbol indices"):
+        tide.decode([0, 7])
+    with pytest.raises(UsageError, match="symbol indices"):
+        tide.context_indices(np.array([0, 1, 2]))
+    with pytest.raises(UsageError, match="initial"):
+        tide.sample(5, seed=0, initial=[0, 5])
+    with pytest.raises(UsageError, match="task file"):
+        load_task(3)
+    with pytest.raises(TaskError, match="mapping"):
+        Task.from_dict([("name", "t")])
+    assert tide.sample(0, seed=0).shape == (0,)
+
+
+def test_a_seed_generator_is_used_as_it_is(tide: Task) -> None:
+    a = tide.sample(50, seed=np.random.default_rng(3))
+    b = tide.sample(50, seed=np.random.default_rng(3))
+    assert np.array_equal(a, b)
+
+
+def test_impossible_transitions_are_listed(tmp_path: Path) -> None:
+    task = Task.from_dict({"name": "t", "symbols": ["a", "b"], "contexts": [
+        {"past": ["a"], "next": {"a": 0.0, "b": 1.0}}, {"past": ["b"], "next": {"a": 0.5, "b": 0.5}}]})
+    x = task.encode(["b", "a", "b", "a", "a", "b", "a", "a"])
+    assert task.impossible(x).tolist() == [4, 7]
+    assert task.impossible(x[:1]).tolist() == []

@@ -51,12 +51,24 @@ def job_backend(backend: str = "local", scheduler: str | None = None, *,
         client = Client(scheduler, timeout=timeout)
     except (OSError, TimeoutError, ValueError) as err:
         raise UsageError(f"cannot reach the Dask scheduler at {scheduler}: {err}") from None
+    _check_workers(client, scheduler, timeout)
     token = _ON_CLUSTER.set(True)
     try:
         with client, joblib.parallel_config(backend="dask"):
             yield
     finally:
         _ON_CLUSTER.reset(token)
+
+
+def _check_workers(client: object, scheduler: object, timeout: float) -> None:
+    """Raise UsageError (after closing ``client``) when the scheduler has no worker within ``timeout`` seconds."""
+    try:
+        client.wait_for_workers(1, timeout=timeout)
+    except (OSError, TimeoutError):
+        client.close()
+        where = scheduler if isinstance(scheduler, str) else "the cluster"
+        raise UsageError(f"the Dask scheduler at {where} has no workers: start one on each machine "
+                         f"of the cluster with: dask worker {where}") from None
 
 
 def job_count(n_jobs: int) -> int:

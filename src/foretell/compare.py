@@ -1,54 +1,12 @@
-"""Model comparison tables: per-participant winners and group-level model and family selection.
+"""Model comparison tables: per-participant winners, group-level model and family selection, look-alike models.
 
-Tidy wrappers over the fitter's ``fits`` and ``blocks`` tables:
-:func:`log_evidence_table`, :func:`block_log_evidence_table`, :func:`winners`,
-:func:`selection`, :func:`selection_blocks`, :func:`families`,
-:func:`families_blocks`; :func:`lookalikes` finds models that cannot be told
-apart; :func:`default_families`. The numerical kernels live in
-:mod:`foretell.stats.selection`, the plain-words summary in :mod:`foretell.summaries`.
-
-Evidence
---------
-``criterion="bic"``: log evidence -BIC/2 (Schwarz's approximation of the log
-marginal likelihood; Raftery, 1995), whole session from ``fits.bic``, per
-block from ``blocks.bic_block`` (every free parameter refitted on that block).
-``criterion="cv"``: the held-out log-likelihood of leave-one-block-out
-cross-validation, ``fits.cv_loglik`` for the whole session and
-``blocks.cv_loglik_block`` per block.
-
-Inputs that fail refuse to speak
---------------------------------
-A participant's evidence for a model is *unusable* when its fit did not
-converge (whole session: ``converged``, and with "cv" ``cv_converged``; per
-block with "bic": the block refit's ``converged``; per block with "cv":
-``cv_converged``) or when the score is missing. A group comparison then
-leaves that participant out entirely (random-effects selection needs every
-model's evidence for every participant it counts) and says so in the
-``note`` column; ``n_participants`` counts only those kept. When nobody is
-left, or the posterior could not be computed reliably, every number of
-that comparison is NaN and ``note`` says why.
-
-Look-alike models
------------------
-Models that make identical predictions (e.g. ``count-task`` on a memoryless
-task *is* ``count-0``) would split their evidence between them. Pass the
-sets found by :func:`lookalikes` as ``merge``: the first model of each set
-is kept, the others are left out of winners, selection and families and
-named in ``note``. Recovery studies, which need every generating model,
-pass no sets.
-
-References
-----------
-Stephan et al. (2009), Penny et al. (2010), Rigoux et al. (2014): see
-:mod:`foretell.stats.selection`. Kass, R. E., & Raftery, A. E. (1995). Bayes factors.
-JASA 90, 773-795. Raftery, A. E. (1995). Bayesian model selection in social
-research. Sociological Methodology 25, 111-163.
+Tidy wrappers over the fitter's ``fits`` and ``blocks`` tables; the kernels
+live in :mod:`foretell.stats.selection`, the words in :mod:`foretell.summaries`.
 """
 
 from __future__ import annotations
 
 import re
-import zlib
 from typing import Callable, Iterator, Mapping, Sequence
 
 import numpy as np
@@ -57,7 +15,8 @@ import pandas as pd
 from .stats.selection import FamilyBMSResult, family_bms, rfx_bms, rfx_gibbs
 from .errors import UsageError
 from .labels import ALL, block_label
-from .models import ModelSpec
+from .models import ModelSpec, lookalike_note
+from .validation import check_option, check_seed, child_rng
 
 CRITERIA = ("bic", "cv")
 METHODS = ("auto", "variational", "gibbs")
@@ -90,11 +49,6 @@ def _group_labels(table: pd.DataFrame) -> pd.Series:
     if "group" not in table.columns:
         return pd.Series(pd.NA, index=table.index, dtype="string")
     return table["group"].astype("string")
-
-
-def _check_criterion(criterion: str) -> None:
-    if criterion not in CRITERIA:
-        raise UsageError(f"criterion must be one of {CRITERIA}; got {criterion!r}")
 
 
 def _require(table: pd.DataFrame, columns: Sequence[str], what: str) -> None:
@@ -134,13 +88,28 @@ def _block_keys(blocks: pd.DataFrame) -> list[str]:
 def log_evidence_table(fits: pd.DataFrame, criterion: str = "bic") -> pd.DataFrame:
     """Return one row per participant and model with its whole-session log evidence in nats.
 
-    ``criterion="bic"``: log evidence = -BIC / 2 (Raftery, 1995), usable when
-    ``converged``; ``"cv"``: the leave-one-block-out held-out log-likelihood
-    ``cv_loglik``, usable when ``converged`` and ``cv_converged``.
-    Columns: participant, group, model, criterion, log_evidence (NaN when
-    unusable), note (why it is unusable: "<flag> false" or "missing score").
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        The fits table (participant, model, bic or cv_loglik, converged, cv_converged).
+    criterion : {"bic", "cv"}
+        "bic": log evidence -BIC/2 (Schwarz's approximation of the log
+        marginal likelihood; Raftery, 1995), usable when ``converged``;
+        "cv": the leave-one-block-out held-out log-likelihood ``cv_loglik``,
+        usable when ``converged`` and ``cv_converged``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        participant, group, model, criterion, log_evidence (NaN when
+        unusable), note (why it is unusable: "<flag> false" or "missing score").
+
+    Raises
+    ------
+    UsageError
+        For another criterion, or a table without the columns it needs.
     """
-    _check_criterion(criterion)
+    check_option("criterion", criterion, CRITERIA)
     if criterion == "bic":
         _require(fits, ["participant", "model", "bic"], "fits")
         return _tidy(fits, -0.5 * fits["bic"].astype(float), criterion, [], ["converged"])
@@ -151,80 +120,36 @@ def log_evidence_table(fits: pd.DataFrame, criterion: str = "bic") -> pd.DataFra
 def block_log_evidence_table(blocks: pd.DataFrame, criterion: str = "bic") -> pd.DataFrame:
     """Return one row per participant, block and model with that block's log evidence in nats.
 
-    ``criterion="bic"``: -bic_block / 2, where bic_block = n_params ln(n_trials)
-    - 2 loglik_block (Schwarz, 1978) with every free parameter refitted on the
-    block's scored trials; usable when that refit ``converged``. ``"cv"``:
-    ``cv_loglik_block``, the block's held-out log-likelihood with parameters
-    fitted on the other blocks; usable when ``cv_converged`` (missing when
-    the participant has one block). Columns: participant, group, session
-    (when the table has one: blocks restart at each session), block (session
-    and block as strings), model, criterion, log_evidence, note.
+    Parameters
+    ----------
+    blocks : pandas.DataFrame
+        The blocks table of the fits.
+    criterion : {"bic", "cv"}
+        "bic": -bic_block/2, where bic_block = n_params ln(n_trials) - 2
+        loglik_block (Schwarz, 1978) with every free parameter refitted on the
+        block's scored trials, usable when that refit ``converged``; "cv":
+        ``cv_loglik_block``, the block's held-out log-likelihood with
+        parameters fitted on the other blocks, usable when ``cv_converged``
+        (missing when the participant has one block).
+
+    Returns
+    -------
+    pandas.DataFrame
+        participant, group, session (when the table has one: blocks restart
+        at each session), block (session and block as strings), model,
+        criterion, log_evidence, note.
+
+    Raises
+    ------
+    UsageError
+        For another criterion, or a table without the columns it needs.
     """
-    _check_criterion(criterion)
+    check_option("criterion", criterion, CRITERIA)
     score, flag = ("bic_block", "converged") if criterion == "bic" else ("cv_loglik_block", "cv_converged")
     keys = _block_keys(blocks)
     _require(blocks, ["participant", *keys, "model", score], "blocks")
     evidence = blocks[score].astype(float) * (-0.5 if criterion == "bic" else 1.0)
     return _tidy(blocks, evidence, criterion, keys, [flag])
-
-
-# --------------------------------------------------------------------------- look-alike models
-
-
-def lookalikes(specs: Sequence[ModelSpec], predictions: pd.DataFrame | None = None,
-               tol: float = 1e-12) -> list[tuple[str, ...]]:
-    """Return the sets of models that cannot be told apart, each in the order of ``specs``.
-
-    Two models are look-alikes when they have the same free parameters and
-    either the same :attr:`ModelSpec.signature` (identical predictions on every
-    sequence by construction, e.g. ``count-task`` on a memoryless task and
-    ``count-0``) or, as a safety net, the same predictions on these data:
-    in ``predictions`` (one row per trial and model: participant, session,
-    block, trial, model, p_<symbol>) the same trials and every p_<symbol>
-    within ``tol`` for every participant. Sets are closed under both
-    relations; only sets of two or more are returned, ordered by their first
-    model. The first model of a set is the one the comparisons keep.
-    """
-    ids = [s.model_id for s in specs]
-    parent = list(range(len(specs)))
-
-    def root(i: int) -> int:
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    def join(i: int, j: int) -> None:
-        a, b = root(i), root(j)
-        parent[max(a, b)] = min(a, b)
-
-    pairs = [(i, j) for i in range(len(specs)) for j in range(i + 1, len(specs))
-             if specs[i].free == specs[j].free]
-    for i, j in pairs:
-        if specs[i].signature and specs[i].signature == specs[j].signature:
-            join(i, j)
-    if predictions is not None and len(predictions):
-        columns = sorted(c for c in predictions.columns if c.startswith("p_"))
-        keys = [c for c in ("participant", "session", "block", "trial") if c in predictions.columns]
-        if not columns or not keys:
-            raise UsageError("predictions need p_<symbol> columns and participant, session, block, trial")
-        tables = {m: part.sort_values(keys).set_index(keys)[columns]
-                  for m, part in predictions.groupby("model", sort=False) if m in ids}
-        for i, j in pairs:
-            a, b = tables.get(ids[i]), tables.get(ids[j])
-            if root(i) == root(j) or a is None or b is None or not a.index.equals(b.index):
-                continue
-            if np.allclose(a.to_numpy(float), b.to_numpy(float), rtol=0.0, atol=tol, equal_nan=True):
-                join(i, j)
-    sets: dict[int, list[str]] = {}
-    for i, model in enumerate(ids):
-        sets.setdefault(root(i), []).append(model)
-    return [tuple(members) for _, members in sorted(sets.items()) if len(members) > 1]
-
-
-def lookalike_note(kept: str, others: Sequence[str]) -> str:
-    """Return the words that say ``others`` were left out as identical to ``kept``."""
-    return f"{', '.join(others)} left out: identical to {kept} on this task"
 
 
 def _merge(tidy: pd.DataFrame, merge: Sequence[Sequence[str]]) -> tuple[pd.DataFrame, str]:
@@ -250,21 +175,47 @@ _MIX = re.compile(r"mix-(\d+)")
 
 
 def model_depth(model_id: str) -> int | None:
-    """Return the context depth of a counting or mixture model id, None for ``count-task`` and ``source``."""
+    """Return the context depth of a counting or mixture model id, None for ``count-task`` and ``source``.
+
+    Parameters
+    ----------
+    model_id : str
+
+    Returns
+    -------
+    int or None
+
+    Examples
+    --------
+    >>> model_depth("count-2-leak"), model_depth("mix-4"), model_depth("source")
+    (2, 4, None)
+    """
     match = _COUNT.fullmatch(model_id) or _MIX.fullmatch(model_id)
     return int(match.group(1)) if match else None
 
 
 def default_families(models: Sequence[str | ModelSpec], task_depth: int | None = None) -> dict[str, list[str]]:
-    """Return foretell's default model families over ``models`` (ids or specs; empty families dropped).
+    """Return foretell's default model families over ``models`` (empty families dropped).
 
-    "shallow": depth <= 1, leaky or not; "deep": depth >= 2 (``count-2`` ...,
-    their leaky versions, ``count-task`` on a task deeper than 1, ``mix-D``
-    with D >= 2). A :class:`ModelSpec` carries its own ``family``; for an id
-    the depth is read from the id, and ``count-task`` is shallow when
-    ``task_depth`` (the task's deepest context) is given and at most 1.
-    ``source``, the oracle (family None), learns nothing and is left out of
-    the family comparison. Other ids raise UsageError: pass explicit families.
+    Parameters
+    ----------
+    models : sequence of str or ModelSpec
+        A spec carries its own ``family``; for an id the depth is read from the id.
+    task_depth : int, optional
+        The task's deepest context: ``count-task`` is shallow when it is at most 1.
+
+    Returns
+    -------
+    dict of str to list of str
+        "shallow": depth <= 1, leaky or not; "deep": depth >= 2 (``count-2``
+        ..., their leaky versions, ``count-task`` on a task deeper than 1,
+        ``mix-D`` with D >= 2). ``source``, the oracle (family None), learns
+        nothing and is left out.
+
+    Raises
+    ------
+    UsageError
+        For other ids: pass explicit families.
     """
     fams: dict[str, list[str]] = {"shallow": [], "deep": []}
     unknown = []
@@ -311,12 +262,6 @@ def _units(tidy: pd.DataFrame, by: list[str], by_group: bool) -> Iterator[tuple[
             yield {"group": group, **dict(zip(by, key))}, wide.dropna(axis=0, how="any"), note
 
 
-def _unit_rng(seed: int, labels: Mapping[str, object], kind: str) -> np.random.Generator:
-    """Return the Generator of one comparison: the seed and a hash of its labels, so units are independent."""
-    key = zlib.crc32("|".join([kind, *map(str, labels.values())]).encode())
-    return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(key,)))
-
-
 def _disagree(a, b) -> bool:
     return bool(np.max(np.abs(a.expected_freq - b.expected_freq)) > FREQ_MARGIN
                 or np.max(np.abs(a.exceedance - b.exceedance)) > XP_MARGIN)
@@ -355,8 +300,8 @@ def _posterior(evidence: np.ndarray, models: list[str], spec: Mapping[str, Seque
 
 def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spec: FamilySpec | None,
                  merge: Sequence[Sequence[str]], method: str, alpha0: float, seed: int) -> pd.DataFrame:
-    if method not in METHODS:
-        raise UsageError(f"method must be one of {METHODS}; got {method!r}")
+    check_option("method", method, METHODS)
+    seed = check_seed(seed)
     criterion = tidy["criterion"].iloc[0] if len(tidy) else None
     tidy, merged = _merge(tidy, merge)
     label = "family" if families_spec is not None else "model"
@@ -378,7 +323,7 @@ def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spe
         names = list(spec) if spec is not None else models
         result, used = None, ""
         if len(wide) and names:
-            rng = _unit_rng(seed, labels, label)
+            rng = child_rng(seed, label, *labels.values())
             result, why = _posterior(wide.to_numpy(), models, spec, method, alpha0, rng)
             used = result.method if result is not None else ""
             note = _join(note, why)
@@ -403,50 +348,85 @@ def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spe
     return pd.DataFrame(rows, columns=columns)
 
 
-_SELECTION_COLUMNS = """
-    - group: ``all`` (everyone), then each group when the table has one;
-    - expected_freq: posterior mean frequency of the model in the population;
-    - exceedance: posterior probability that it is more frequent than every other;
-    - protected_exceedance: (1 - bor) exceedance + bor / K (Rigoux et al., 2014);
-    - bor: Bayesian omnibus risk, the posterior probability that all models
-      are equally frequent (one value per comparison);
-    - freq_concentration: posterior Dirichlet parameter of the frequency
-      (variational), or alpha0 + the posterior mean count of participants
-      assigned to the model (Gibbs); expected_freq = freq_concentration / its sum;
-    - n_participants: participants counted (those with usable evidence for every model);
-    - criterion: "bic" (log evidence -BIC/2) or "cv" (held-out log-likelihood);
-    - method: "variational" (Stephan et al., 2009) or "gibbs" (Penny et al., 2010);
-      empty when nothing could be computed;
-    - note: participants left out, look-alike models left out, failures; empty when none.
-"""
-
-
-def _options_doc(default: str) -> str:
-    return f"""
-    ``method`` (default "{default}"): "variational", "gibbs", or "auto": the
-    variational result unless the Gibbs sampler (run as a check) differs from
-    it by more than :data:`FREQ_MARGIN` in an expected frequency or
-    :data:`XP_MARGIN` in an exceedance, then the Gibbs result; a scheme that
-    does not converge is not used, and with neither every number is NaN.
-    ``alpha0``: the Dirichlet prior on frequencies (per family for families).
-    ``seed``: the Gibbs sampler's seed (each comparison draws from its own
-    stream, keyed by its labels). ``merge``: look-alike sets from
-    :func:`lookalikes` (the first of each kept); empty to compare every model.
-    ``by_group``: add a comparison per group besides ``all``.
-"""
-
-
 def selection(fits: pd.DataFrame, *, criterion: str = "bic", by_group: bool = True,
               merge: Sequence[Sequence[str]] = (), method: str = "auto", alpha0: float = 1.0,
               seed: int = 0) -> pd.DataFrame:
-    """Return random-effects model selection over participants' whole sessions, for everyone and per group."""
+    """Return random-effects model selection over participants' whole sessions, for everyone and per group.
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        The fits table; evidence as in :func:`log_evidence_table`.
+    criterion : {"bic", "cv"}
+    by_group : bool, default True
+        Add a comparison per group besides ``all``.
+    merge : sequence of sequence of str
+        Look-alike sets from :func:`lookalikes` (the first of each kept);
+        empty to compare every model.
+    method : {"auto", "variational", "gibbs"}
+        "auto": the variational result unless the Gibbs sampler (run as a
+        check) differs from it by more than :data:`FREQ_MARGIN` in an
+        expected frequency or :data:`XP_MARGIN` in an exceedance, then the
+        Gibbs result; a scheme that does not converge is not used.
+    alpha0 : float, default 1.0
+        The Dirichlet prior on frequencies (per family for families).
+    seed : int or numpy.random.Generator, default 0
+        The Gibbs sampler's seed: each comparison draws from
+        ``child_rng(seed, "model" or "family", group, session, block)``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        group (``all``, then each group), model, expected_freq (posterior
+        mean frequency), exceedance (posterior probability of being more
+        frequent than every other), protected_exceedance ((1 - bor)
+        exceedance + bor / K), bor (Bayesian omnibus risk: the posterior
+        probability that all models are equally frequent), freq_concentration
+        (the posterior Dirichlet parameter, or alpha0 + the posterior mean
+        count with Gibbs), n_participants (those with usable evidence for
+        every model), criterion, method ("variational", "gibbs", or empty when
+        nothing could be computed), note (participants and look-alikes left
+        out, failures).
+
+    Notes
+    -----
+    Inputs that fail refuse to speak: a participant with unusable evidence
+    for any model is left out of the comparison and named in ``note``
+    (random-effects selection needs every model's evidence for every
+    participant it counts); when nobody is left, or no scheme converged,
+    every number is NaN and ``note`` says why.
+
+    References
+    ----------
+    Stephan, K. E. et al. (2009). Bayesian model selection for group studies.
+    NeuroImage 46, 1004-1017. Penny, W. D. et al. (2010). Comparing families of
+    dynamic causal models. PLoS Comput. Biol. 6, e1000709. Rigoux, L. et al.
+    (2014). Bayesian model selection for group studies - revisited.
+    NeuroImage 84, 971-985.
+    """
     return _select_rows(log_evidence_table(fits, criterion), [], by_group, None, merge, method, alpha0, seed)
 
 
 def selection_blocks(blocks: pd.DataFrame, *, criterion: str = "bic", by_group: bool = True,
                      merge: Sequence[Sequence[str]] = (), method: str = "auto", alpha0: float = 1.0,
                      seed: int = 0) -> pd.DataFrame:
-    """Return :func:`selection` for every block, from each block's own evidence (:func:`block_log_evidence_table`)."""
+    """Return :func:`selection` for every block, from each block's own evidence.
+
+    Parameters
+    ----------
+    blocks : pandas.DataFrame
+        The blocks table; evidence as in :func:`block_log_evidence_table`
+        (with "bic" the per-block refit's -bic_block/2, with "cv" the block's
+        held-out log-likelihood).
+    criterion, by_group, merge, method, alpha0, seed
+        As :func:`selection`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        group, session (when ``blocks`` has one), block (as strings), then
+        the columns of :func:`selection`.
+    """
     tidy = block_log_evidence_table(blocks, criterion)
     return _select_rows(tidy, _block_keys(blocks), by_group, None, merge, method, alpha0, seed)
 
@@ -454,7 +434,28 @@ def selection_blocks(blocks: pd.DataFrame, *, criterion: str = "bic", by_group: 
 def families(fits: pd.DataFrame, families: FamilySpec | None = None, *, criterion: str = "bic",
              by_group: bool = True, merge: Sequence[Sequence[str]] = (), method: str = "gibbs",
              alpha0: float = 1.0, seed: int = 0) -> pd.DataFrame:
-    """Return family-level model selection (Penny et al., 2010) over whole sessions, for everyone and per group."""
+    """Return family-level model selection (Penny et al., 2010) over whole sessions, for everyone and per group.
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+    families : mapping or callable, optional
+        Family names -> model ids, or a function of the compared model ids
+        returning such a map (default :func:`default_families`; pass
+        ``default_families(specs)`` to use each spec's family). Models in no
+        family are left out (named in ``note``).
+    criterion, by_group, merge, alpha0, seed
+        As :func:`selection`.
+    method : {"gibbs", "variational", "auto"}, default "gibbs"
+        With unequal family sizes the variational scheme can be far off.
+
+    Returns
+    -------
+    pandas.DataFrame
+        group, family, then the columns of :func:`selection` (expected_freq,
+        exceedance and freq_concentration summed over the family's models)
+        and models (the family's compared models, ";"-joined).
+    """
     return _select_rows(log_evidence_table(fits, criterion), [], by_group, families or default_families,
                         merge, method, alpha0, seed)
 
@@ -462,53 +463,49 @@ def families(fits: pd.DataFrame, families: FamilySpec | None = None, *, criterio
 def families_blocks(blocks: pd.DataFrame, families: FamilySpec | None = None, *, criterion: str = "bic",
                     by_group: bool = True, merge: Sequence[Sequence[str]] = (), method: str = "gibbs",
                     alpha0: float = 1.0, seed: int = 0) -> pd.DataFrame:
-    """Return :func:`families` for every block, from each block's own evidence (:func:`block_log_evidence_table`)."""
+    """Return :func:`families` for every block, from each block's own evidence.
+
+    Parameters
+    ----------
+    blocks : pandas.DataFrame
+        Evidence as in :func:`block_log_evidence_table`.
+    families, criterion, by_group, merge, method, alpha0, seed
+        As :func:`families`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        group, session (when ``blocks`` has one), block, then the columns of :func:`families`.
+    """
     tidy = block_log_evidence_table(blocks, criterion)
     return _select_rows(tidy, _block_keys(blocks), by_group, families or default_families, merge,
                         method, alpha0, seed)
-
-
-selection.__doc__ += f"""
-    Columns: group, model, expected_freq, exceedance, protected_exceedance,
-    bor, freq_concentration, n_participants, criterion, method, note, where
-{_SELECTION_COLUMNS}
-    Evidence as in :func:`log_evidence_table`.
-{_options_doc("auto")}"""
-
-selection_blocks.__doc__ += f"""
-    Columns: group, session (when ``blocks`` has one), block (session and
-    block as strings), then as :func:`selection`:
-{_SELECTION_COLUMNS}
-    With ``criterion="bic"`` a block's evidence is -bic_block/2 of the
-    per-block refit; with "cv" its held-out log-likelihood.
-{_options_doc("auto")}"""
-
-families.__doc__ += f"""
-    ``families`` maps family names to model ids, or is a function of the
-    compared model ids returning such a map (default :func:`default_families`;
-    pass ``default_families(specs)`` to use each spec's family); models in no
-    family are left out (named in ``note``). Columns: group, family,
-    expected_freq, exceedance, protected_exceedance, bor, freq_concentration,
-    n_participants, criterion, method, models (the family's compared models,
-    ";"-joined), note, where
-{_SELECTION_COLUMNS}
-    expected_freq, exceedance and freq_concentration are the family's (sums over its models).
-{_options_doc("gibbs")}"""
-
-families_blocks.__doc__ += f"""
-    Columns: group, session (when ``blocks`` has one), block, then as :func:`families`:
-{_SELECTION_COLUMNS}
-{_options_doc("gibbs")}"""
 
 
 # --------------------------------------------------------------------------- winners
 
 
 def strength(delta: float) -> str | None:
-    """Return the Kass & Raftery (1995) grade of 2 ln BF = ``delta``; None when ``delta`` is NaN.
+    """Return the Kass & Raftery (1995) grade of 2 ln BF = ``delta``.
 
-    "bare-mention" (< 2, not worth more than a bare mention), "positive"
-    (2 to 6), "strong" (6 to 10), "very-strong" (> 10).
+    Parameters
+    ----------
+    delta : float
+
+    Returns
+    -------
+    str or None
+        "bare-mention" (< 2, not worth more than a bare mention), "positive"
+        (2 to 6), "strong" (6 to 10), "very-strong" (> 10); None when NaN.
+
+    References
+    ----------
+    Kass, R. E., & Raftery, A. E. (1995). Bayes factors. JASA 90, 773-795.
+
+    Examples
+    --------
+    >>> strength(7.5)
+    'strong'
     """
     if delta is None or np.isnan(delta):
         return None
@@ -519,26 +516,28 @@ def winners(fits: pd.DataFrame, blocks: pd.DataFrame | None = None, *, criterion
             merge: Sequence[Sequence[str]] = ()) -> pd.DataFrame:
     """Return each participant's best model for the whole session and for every block.
 
-    ``criterion="bic"`` ranks by log evidence -BIC/2 (whole session: ``bic``;
-    block: ``bic_block`` of the per-block refit); ``"cv"`` by the held-out
-    log-likelihood (``cv_loglik``, ``cv_loglik_block``); usability as in
-    :func:`log_evidence_table` and :func:`block_log_evidence_table`. Columns:
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+    blocks : pandas.DataFrame, optional
+    criterion : {"bic", "cv"}
+        Log evidence -BIC/2 (whole session: ``bic``; block: ``bic_block`` of
+        the per-block refit) or the held-out log-likelihood (``cv_loglik``,
+        ``cv_loglik_block``); usability as in :func:`log_evidence_table`.
+    merge : sequence of sequence of str
+        Look-alike sets (:func:`lookalikes`).
 
-    - participant, group;
-    - session (only when ``blocks`` has one) and block: ``all`` for the whole
-      session, else the number as a string (one type per column);
-    - best_model, runner_up: the best and second-best usable models;
-    - criterion: "bic" or "cv";
-    - delta: 2 x (log evidence of best_model - log evidence of runner_up),
-      i.e. BIC(runner_up) - BIC(best_model) with "bic" and twice the
-      difference in held-out log-likelihood with "cv", so that both read as
-      2 ln(Bayes factor) (approximately, for BIC; by analogy, for CV); NaN with
-      one usable model;
-    - strength: the grade of delta after Kass & Raftery (1995), see
-      :func:`strength`; empty when delta is NaN or when a model was left out
-      as unusable (that model might have won);
-    - n_models: the usable models compared;
-    - note: models left out as unusable, look-alike models left out.
+    Returns
+    -------
+    pandas.DataFrame
+        participant, group, session (only when ``blocks`` has one), block
+        (``all`` for the whole session, else the number as a string),
+        best_model, runner_up, criterion, delta (2 x the log-evidence
+        difference of best and runner-up: 2 ln(Bayes factor), approximately
+        for BIC, by analogy for CV; NaN with one usable model), strength
+        (:func:`strength` of delta; empty when delta is NaN or a model was left
+        out as unusable: it might have won), n_models (usable models), note
+        (models left out as unusable, look-alikes left out).
     """
     keys = _block_keys(blocks) if blocks is not None else ["block"]
     tables = [log_evidence_table(fits, criterion).assign(**{k: ALL for k in keys})]

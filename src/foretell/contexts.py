@@ -1,34 +1,8 @@
-"""The context report: which stimulus contexts a participant's guesses depend on, learner-free.
+"""Response trees: which stimulus contexts a participant's guesses depend on, learner-free, and their check.
 
-The Bayesian context-tree machinery (:class:`foretell.learners.TreeMixture`,
-Willems, Shtarkov & Tjalkens, 1995; Kontoyiannis et al., 2022) is applied to
-(stimulus past -> guess) pairs: the context of trial t is the stimuli before
-it, and the symbol counted at each node is the participant's guess. The
-posterior probability that a context is a leaf, and the MAP "response tree",
-say which pasts the guesses distinguish, whatever learner produced them.
-
-Recency is not context use. A learner that weighs recent trials more (leaky
-counting, or any learner with a short memory) makes its guesses depend on
-the last few stimuli even when it counts no context at all: a leaky depth-0
-learner on a memoryless source guesses what it has just seen, and its
-response tree is split deeper than the source. So a response tree deeper
-than the source is evidence that a participant uses a context only when it
-goes beyond what the participant's winning model itself produces. Given
-the fits and the winners, :func:`context_report` simulates that baseline
-(replicate guesses from each participant's winning model on the
-participant's own stimuli) and :func:`context_agreement` says, per source
-context, whether the observed status is one the winning model produces (a
-posterior predictive check; see :func:`context_agreement`).
-
-Sessions and blocks. A participant's sessions are pooled by summing the node
-statistics: the sessions are laid end to end and the first ``max_depth``
-trials of every session are skipped (their context would reach into the
-previous session), exactly as the mixture skips the first ``max_depth``
-trials of a sequence; so the pooled counts are the sums of the per-session
-counts. Rows with block ``all`` (and session ``all``) pool every trial of the
-participant; a block's rows (labelled by its session and block, as strings)
-count the guesses of that block only, the context still being the stimuli
-that preceded each trial in its session. Missed guesses are not counted.
+The Bayesian context-tree posterior is applied to (stimulus past -> guess)
+pairs (:func:`context_report`) and checked against guesses simulated from
+each participant's winning model (:func:`context_agreement`).
 """
 
 from __future__ import annotations
@@ -44,10 +18,11 @@ from foretell.errors import UsageError
 from foretell.labels import ALL, block_label, parse_context
 from foretell.learners import TreeMixture
 from foretell.learners.base import Learner
-from foretell.learners.mixture import TreePosterior
+from foretell.learners.mixture import MAX_TREE_DEPTH, TreePosterior
 from foretell.models import normalise_model_id, parse_model
 from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
+from foretell.validation import check_count, check_seed, child_rng
 
 STATUSES = ("distinguished", "merged", "split-deeper", "unvisited")
 
@@ -191,21 +166,35 @@ def _replicate_guesses(winner: _Winner, x: np.ndarray, session: np.ndarray, coun
     return np.where(counted, guesses, -1)
 
 
-def _participant_rng(seed: int, participant: object) -> np.random.Generator:
-    """Return the participant's own stream: a SeedSequence child of ``seed`` keyed by the participant's label.
+def response_tree_depth(task: Task, depth: int | None = None) -> int:
+    """Return the depth of the response trees: ``depth``, or the task's deepest context + 1 within the limit.
 
-    Keyed by the label (not by position), a participant's replicates do not
-    depend on the order of the log, on the other participants, or on how the
-    work is split.
+    Parameters
+    ----------
+    task : Task
+    depth : int, optional
+        An explicit depth, from 0 to :data:`foretell.learners.mixture.MAX_TREE_DEPTH`.
+
+    Returns
+    -------
+    int
+        One more than the task's deepest context by default, so that a
+        response tree deeper than the source can show, within the tree
+        mixture's limit.
+
+    Raises
+    ------
+    UsageError
+        For an explicit depth that is not a whole number in range (raised
+        before any fitting).
     """
-    key = tuple(str(participant).encode("utf-8"))
-    return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=key))
-
-
-def _check_count(name: str, value: object, low: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-        raise UsageError(f"{name} must be a whole number >= {low}, got {value!r}")
-    return int(value)
+    if depth is None:
+        return min(task.max_depth + 1, MAX_TREE_DEPTH)
+    depth = check_count("the response-tree depth", depth, 0)
+    if depth > MAX_TREE_DEPTH:
+        raise UsageError(f"the response-tree depth must be at most {MAX_TREE_DEPTH} (the tree mixture's "
+                         f"limit), got {depth}")
+    return depth
 
 
 def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
@@ -214,87 +203,114 @@ def context_report(log: pd.DataFrame, task: Task, max_depth: int | None = None,
                    n_replicates: int = DEFAULT_REPLICATES, seed: int = 0) -> pd.DataFrame:
     """Return the response tree of every participant (and block): one row per visited context.
 
-    For the (stimulus past -> guess) pairs, the tree-mixture posterior gives
-    for each context s: ``n_obs`` (guesses counted there), ``stop_prob`` (the
-    posterior probability of stopping at s given s is reached), ``leaf_prob``
-    = stop_prob(s) prod_{ancestors u} (1 - stop_prob(u)) (the posterior
-    probability that s is a leaf of the response tree), ``in_map_tree`` (s is
-    a leaf of the MAP response tree), and ``in_source_tree`` (s is a context,
-    i.e. a leaf, of the task's true tree).
+    Parameters
+    ----------
+    log : pandas.DataFrame
+        participant, session, block, trial, stimulus_idx, response_idx (-1 =
+        missed); group and missed are used when present.
+    task : Task
+    max_depth : int, optional
+        The trees' depth (:func:`response_tree_depth`).
+    blocks : bool, default True
+        Add each block's tree to the whole-session one.
+    alpha, leaf_prob : float
+        The tree prior's (:class:`foretell.learners.TreeMixture`).
+    fits, winners : pandas.DataFrame, optional
+        Both or neither: the fits (participant, model, inv_temp, lapse, and
+        leak / alpha where fitted; absent or NaN learner parameters take the
+        model's defaults) and winners (participant, block, best_model; the
+        block ``all`` rows are used) from which the winning model's baseline
+        is simulated.
+    n_replicates : int, default 20
+        Guess sequences simulated per participant from the winning model.
+    seed : int or numpy.random.Generator, default 0
+        A participant's replicates come from ``child_rng(seed, "replicates", participant)``:
+        they do not depend on the other participants or their order.
 
-    The winning model's baseline. With ``fits`` (participant, model,
-    inv_temp, lapse, and leak / alpha where fitted; absent or NaN learner
-    parameters take the model's defaults) and ``winners`` (participant,
-    block, best_model; the block ``all`` rows are used), ``n_replicates``
-    guess sequences are drawn per participant from the winning model at its
-    fitted parameters, on the participant's own stimuli (same sessions, the
-    learner restarting at each; the same missed trials left out), and each
-    replicate gets the same response-tree statistics, whole-session and per
-    block as the observed ones. Columns ``model`` (the winning model),
-    ``n_replicates``, ``expected_leaf_prob`` (mean leaf_prob of s over the
-    replicates) and ``expected_distinguished`` / ``expected_merged`` /
-    ``expected_split_deeper`` (share of replicates in which s is a leaf of
-    the MAP response tree / lies inside a shorter MAP leaf / is split deeper
-    by it; they sum to 1). Without fits and winners, or for a participant
-    with no winner or no usable fit (inv_temp, lapse), model is missing,
-    n_replicates is 0 and the expected columns are NaN. Randomness: one
-    SeedSequence child of ``seed`` per participant, keyed by its label, so a
-    participant's replicates do not depend on the other participants or
-    their order.
+    Returns
+    -------
+    pandas.DataFrame
+        participant, group, session, block, context ('-'-joined labels,
+        oldest first; the root '*'), depth, n_obs (guesses counted there),
+        stop_prob (the posterior probability of stopping at s given s is
+        reached), leaf_prob = stop_prob(s) prod_{ancestors u} (1 - stop_prob(u))
+        (the posterior probability that s is a leaf of the response tree),
+        in_map_tree, in_source_tree (s is a context of the task's tree), model
+        (the winning model), n_replicates, expected_leaf_prob (mean leaf_prob
+        over the replicates), expected_distinguished / expected_merged /
+        expected_split_deeper (share of replicates in which s is a MAP leaf /
+        lies inside a shorter MAP leaf / is split deeper; they sum to 1).
+        Without a baseline for a participant, model is missing, n_replicates
+        is 0 and the expected columns are NaN.
 
-    Columns participant, group, session, block, context ('-'-joined labels,
-    oldest first; the root '*'), depth, n_obs, stop_prob, leaf_prob,
-    in_map_tree, in_source_tree, model, n_replicates, expected_leaf_prob,
-    expected_distinguished, expected_merged, expected_split_deeper.
+    Raises
+    ------
+    UsageError
+        For only one of fits and winners, or bad counts.
 
-    ``max_depth`` defaults to one more than the task's deepest context, so
-    that a response tree deeper than the source can show. ``alpha`` and
-    ``leaf_prob`` are the tree prior's (:class:`TreeMixture`). ``log`` needs
-    participant, session, block, trial, stimulus_idx, response_idx (-1 =
-    missed); group and missed are used when present. See the module
-    docstring for how sessions and blocks are pooled.
+    Notes
+    -----
+    The Bayesian context-tree machinery (Willems, Shtarkov & Tjalkens, 1995;
+    Kontoyiannis et al., 2022) is applied to (stimulus past -> guess) pairs:
+    the symbol counted at each node is the participant's guess, so the tree
+    says which pasts the guesses distinguish, whatever learner produced them.
+    Recency is not context use: a leaky learner's guesses depend on the last
+    few stimuli even when it counts no context, so the replicates of the
+    winning model (on the participant's own stimuli, sessions and missed
+    trials) are the baseline that :func:`context_agreement` checks against.
+    Sessions are pooled by summing node statistics (the first ``max_depth``
+    trials of every session are not counted, their context reaching into the
+    previous session); rows with block ``all`` pool every trial, a block's
+    rows count that block's guesses, the context still being the stimuli
+    that preceded each trial in its session.
     """
-    depth = task.max_depth + 1 if max_depth is None else int(max_depth)
+    depth = response_tree_depth(task, max_depth)
     tree = TreeMixture(max_depth=depth, alpha=alpha, leaf_prob=leaf_prob)
     if (fits is None) != (winners is None):
         raise UsageError("give both fits= and winners= (or neither) for the winning model's baseline")
-    n_replicates = _check_count("n_replicates", n_replicates, 1)
-    seed = _check_count("seed", seed, 0)
+    n_replicates = check_count("n_replicates", n_replicates)
+    seed = check_seed(seed)
     baseline = {} if fits is None else _winners(fits, winners, task)
-    source = frozenset(task.contexts)
-    m = task.n_symbols
     data = log if "session" in log.columns else log.assign(session=1)
     data = data.sort_values(["participant", "session", "block", "trial"], kind="stable")
-    parts = []
-    for participant, trials in data.groupby("participant", sort=True):
-        group = trials["group"].iloc[0] if "group" in trials.columns else pd.NA
-        x, y = _pooled_sequence(trials, depth)
-        winner = baseline.get(participant)
-        replicates = None if winner is None else _replicate_guesses(
-            winner, x, trials["session"].to_numpy(), y >= 0, m, n_replicates,
-            _participant_rng(seed, participant))
-        units = [((ALL, ALL), np.ones(len(trials), dtype=bool))]
-        if blocks:
-            pairs = trials[["session", "block"]].drop_duplicates().itertuples(index=False)
-            units += [((block_label(s), block_label(b)),
-                       ((trials["session"] == s) & (trials["block"] == b)).to_numpy()) for s, b in pairs]
-        for (session, block), mask in units:
-            post = tree.posterior(x, m, targets=np.where(mask, y, -1))[0]
-            keep = post.n_obs > 0
-            rows = _report_rows(post, task, source)[keep]
-            if winner is None:
-                rows = rows.assign(model=None, n_replicates=0, expected_leaf_prob=np.nan,
-                                   **{name: np.nan for name in _EXPECTED_SHARES.values()})
-            else:
-                rows = rows.assign(model=winner.model, n_replicates=n_replicates,
-                                   **_replicate_columns(tree, x, np.where(mask, replicates, -1), m, keep))
-            parts.append(rows.assign(participant=participant, group=group, session=session, block=block))
+    parts = [_participant_report(tree, participant, trials, task, baseline.get(participant), blocks,
+                                 n_replicates, seed)
+             for participant, trials in data.groupby("participant", sort=True)]
     if not parts:
         return pd.DataFrame(columns=_REPORT_COLUMNS)
     out = pd.concat(parts, ignore_index=True)[_REPORT_COLUMNS]
     out["group"] = out["group"].astype("string")
     out["model"] = out["model"].astype("string")
     return out
+
+
+def _participant_report(tree: TreeMixture, participant: object, trials: pd.DataFrame, task: Task,
+                        winner: _Winner | None, blocks: bool, n_replicates: int, seed: int) -> pd.DataFrame:
+    """Return one participant's rows of :func:`context_report`: whole session, then each block."""
+    m = task.n_symbols
+    group = trials["group"].iloc[0] if "group" in trials.columns else pd.NA
+    x, y = _pooled_sequence(trials, tree.max_depth)
+    replicates = None if winner is None else _replicate_guesses(
+        winner, x, trials["session"].to_numpy(), y >= 0, m, n_replicates, child_rng(seed, "replicates", participant))
+    units = [((ALL, ALL), np.ones(len(trials), dtype=bool))]
+    if blocks:
+        pairs = trials[["session", "block"]].drop_duplicates().itertuples(index=False)
+        units += [((block_label(s), block_label(b)),
+                   ((trials["session"] == s) & (trials["block"] == b)).to_numpy()) for s, b in pairs]
+    source = frozenset(task.contexts)
+    parts = []
+    for (session, block), mask in units:
+        post = tree.posterior(x, m, targets=np.where(mask, y, -1))[0]
+        keep = post.n_obs > 0
+        rows = _report_rows(post, task, source)[keep]
+        if winner is None:
+            rows = rows.assign(model=None, n_replicates=0, expected_leaf_prob=np.nan,
+                               **{name: np.nan for name in _EXPECTED_SHARES.values()})
+        else:
+            rows = rows.assign(model=winner.model, n_replicates=n_replicates,
+                               **_replicate_columns(tree, x, np.where(mask, replicates, -1), m, keep))
+        parts.append(rows.assign(participant=participant, group=group, session=session, block=block))
+    return pd.concat(parts, ignore_index=True)
 
 
 def _parse(label: str, task: Task) -> tuple[int, ...]:
@@ -317,39 +333,46 @@ def _status(context: tuple[int, ...], visited: set[tuple[int, ...]],
 def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND_LEVEL) -> pd.DataFrame:
     """Return each source context's status in every response tree, checked against the winning model.
 
-    Status of a source context s (a leaf of the task's true tree) in the MAP
-    response tree of :func:`context_report`: "distinguished" (s is itself a
-    leaf: the guesses depend on exactly that past), "merged" (a shorter
-    context, a suffix of s, is the leaf: the guesses do not tell s from its
-    siblings), "split-deeper" (the response tree splits s further: the guesses
-    depend on an older symbol than the source does), "unvisited" (no guess
-    was counted in s; also when s is deeper than the report's max_depth).
+    Parameters
+    ----------
+    report : pandas.DataFrame
+        The output of :func:`context_report`.
+    task : Task
+    level : float, default 0.05
+        ``beyond_model`` is True when the observed status occurs in fewer
+        than this share of the winning model's replicates.
 
-    A status is not evidence of context use by itself: recency alone (a
-    leaky learner) splits the tree deeper (see the module docstring). So each
-    status is set against the replicates of the participant's winning model
-    in the report, a posterior predictive check (Gelman, Meng & Stern, 1996;
-    Gelman et al., Bayesian Data Analysis, ch. 6) with the fitted parameters
-    used as a plug-in estimate (their uncertainty is ignored, which makes the
-    replicates somewhat less varied than a full posterior predictive and the
-    check somewhat quicker to flag). ``expected_status_share`` is the share
-    of replicates in which s has the observed status (1 for unvisited: every
-    replicate counts the same trials), ``expected_leaf_prob`` the mean
-    leaf_prob of s over the replicates, and ``beyond_model`` is True when
-    expected_status_share < ``level`` (default 0.05): the observed
-    dependence on the past, or its absence, is not what the winning model
-    produces on these stimuli. With 20 replicates and level 0.05 that means
-    in none of them; the share cannot resolve finer than 1 / n_replicates.
-    It is a per-context screen, not a corrected test: with many contexts,
-    blocks and participants, about ``level`` of them are flagged by chance
-    when the winning model is right. beyond_model is missing (and model,
-    the expected columns) when the report has no replicates for the
-    participant (no fits / winners given, no winner, or no usable fit).
+    Returns
+    -------
+    pandas.DataFrame
+        participant, group, session, block, source_context, depth, status,
+        response_leaf (the covering MAP leaf; '' when split or unvisited),
+        n_obs and leaf_prob of s (0 and NaN when unvisited), model,
+        n_replicates, expected_status_share (share of replicates in which s
+        has the observed status; 1 for unvisited), expected_leaf_prob,
+        beyond_model (missing, with model and the expected columns, when the
+        report has no replicates for the participant).
 
-    Columns participant, group, session, block, source_context, depth,
-    status, response_leaf (the covering MAP leaf; '' when split or
-    unvisited), n_obs and leaf_prob of s (0 and NaN when unvisited), model,
-    n_replicates, expected_status_share, expected_leaf_prob, beyond_model.
+    Raises
+    ------
+    UsageError
+        For ``level`` outside (0, 1).
+
+    Notes
+    -----
+    Status of a source context s in the MAP response tree: "distinguished"
+    (s is itself a leaf: the guesses depend on exactly that past), "merged"
+    (a shorter context, a suffix of s, is the leaf), "split-deeper" (the
+    response tree splits s further: the guesses depend on an older symbol
+    than the source does), "unvisited" (no guess was counted in s; also when
+    s is deeper than the report's depth). Recency alone splits trees deeper,
+    so each status is set against the replicates of the participant's
+    winning model, a posterior predictive check (Gelman, Meng & Stern, 1996)
+    with the fitted parameters as a plug-in estimate (their uncertainty is
+    ignored, which makes the check somewhat quicker to flag). With 20
+    replicates and level 0.05, beyond_model means "in none of them"; it is a
+    per-context screen, not a corrected test: about ``level`` of the contexts
+    are flagged by chance when the winning model is right.
     """
     if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0.0 < level < 1.0:
         raise UsageError(f"level must be a number in (0, 1), got {level!r}")
@@ -385,4 +408,5 @@ def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND
     return out
 
 
-__all__ = ["BEYOND_LEVEL", "DEFAULT_REPLICATES", "STATUSES", "context_agreement", "context_report"]
+__all__ = ["BEYOND_LEVEL", "DEFAULT_REPLICATES", "STATUSES", "context_agreement", "context_report",
+           "response_tree_depth"]

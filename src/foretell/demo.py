@@ -13,6 +13,7 @@ participants, 5 blocks of 120 trials. No real study or person is described.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from pathlib import Path
 
 import pandas as pd
@@ -45,31 +46,100 @@ DEMO_GROUPS: dict[str, tuple[ParticipantSpec, ...]] = {
 
 
 def demo_task() -> Task:
-    """Return the demo study's task (lantern-relay)."""
+    """Return the demo study's task.
+
+    Returns
+    -------
+    Task
+        The shipped task ``lantern-relay``.
+    """
     return load_task(shipped_tasks()["lantern-relay"])
 
 
 def make_demo_data(seed: int = DEMO_SEED) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Return (log, truth) of the demo study, regenerated deterministically from ``seed``."""
+    """Return (log, truth) of the demo study, regenerated deterministically from ``seed``.
+
+    Parameters
+    ----------
+    seed : int, default DEMO_SEED
+        The seed of the simulation (:func:`foretell.simulate.simulate_participants`).
+
+    Returns
+    -------
+    log : pandas.DataFrame
+        The response log in the canonical columns.
+    truth : pandas.DataFrame
+        Each participant's generating model and parameters.
+    """
     return simulate_participants(demo_task(), DEMO_PARTICIPANTS, DEMO_BLOCKS,
                                  groups=DEMO_GROUPS, seed=seed)
 
 
 def demo_log() -> pd.DataFrame:
-    """Return the shipped demo response log (canonical columns; missed guesses have no response)."""
+    """Return the shipped demo response log.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Canonical columns; missed guesses have an empty response.
+    """
     return pd.read_csv(_DATA / "demo_log.csv", keep_default_na=False, na_values={"rt": [""]})
 
 
 def demo_truth() -> pd.DataFrame:
-    """Return the shipped truth table of the demo study (generating model and parameters)."""
+    """Return the shipped truth table of the demo study.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Each participant's group, generating model and parameters.
+    """
     return pd.read_csv(_DATA / "demo_truth.csv")
+
+
+STEP_WORDS = {"fit": "fits and comparisons of the default model set", "rt": "reaction times",
+              "groups": "group curves and contrasts", "events": "EEG event files", "report": "the report"}
+"""What each step of the demo's analysis does, in words (the steps of :data:`foretell.steps.whole.STEPS`)."""
+
+
+def demo_plan(task: Task, skip: Iterable[str] = ()) -> str:
+    """Return the demo's first line: the study, and the steps that will actually run.
+
+    Parameters
+    ----------
+    task : Task
+        The demo's task.
+    skip : iterable of str
+        The steps left out (``--skip``).
+
+    Returns
+    -------
+    str
+        One line, e.g. "demo study: task 'lantern-relay' (red, green, blue);
+        28 simulated participants in two invented groups; running: validation,
+        reaction times, the report".
+    """
+    left = set(skip)
+    steps = ["validation"] + [words for step, words in STEP_WORDS.items() if step not in left]
+    return (f"demo study: task {task.name!r} ({', '.join(task.symbols)}); {DEMO_PARTICIPANTS} simulated "
+            f"participants in two invented groups; running: {', '.join(steps)}")
 
 
 def recovery_text(winners: pd.DataFrame, truth: pd.DataFrame) -> str:
     """Return how often each participant's whole-session BIC winner is its generating model, in words.
 
-    Counts exact model recovery and recovery of the model family
-    (:func:`foretell.compare.default_families`), overall and per group.
+    Parameters
+    ----------
+    winners : pandas.DataFrame
+        The winners table of the fits.
+    truth : pandas.DataFrame
+        The truth table (:func:`demo_truth`).
+
+    Returns
+    -------
+    str
+        Per group, the participants whose generating model, and whose model
+        family (:func:`foretell.compare.default_families`), won.
     """
     best = winners[winners["block"] == ALL][["participant", "best_model"]]
     both = truth[["participant", "group", "model"]].merge(best, on="participant")

@@ -8,6 +8,9 @@ from dataclasses import dataclass, field
 from functools import partial
 from typing import Any
 
+import numpy as np
+import pandas as pd
+
 from foretell.errors import UsageError
 from foretell.learners import Counting, Source, TaskCounting, TreeMixture
 from foretell.learners.mixture import MAX_TREE_DEPTH
@@ -23,14 +26,27 @@ SHALLOW_MAX_DEPTH = 1
 class ModelSpec:
     """A candidate model: learner factory, context depth, family and free parameters.
 
-    ``free`` lists the fitted parameters (inv_temp and lapse first, then any
-    of leak and alpha); ``tunable`` the learner parameters the factory
-    accepts; ``defaults`` the learner values used when they are not fitted.
-    ``family`` is "shallow" (depth <= 1), "deep" (depth >= 2) or None for the
-    oracle ``source``, which learns nothing. ``signature`` says what the
-    learner computes: two specs with equal signatures and equal free
-    parameters make identical predictions on every sequence (e.g. count-task
-    on a memoryless task is count-0).
+    Attributes
+    ----------
+    model_id : str
+        The canonical id (``count-2``, ``mix-4``, ...).
+    depth : int
+        The deepest context the learner uses (the warm-up it needs).
+    free : tuple of str
+        The fitted parameters: inv_temp and lapse first, then any of leak and alpha.
+    tunable : tuple of str
+        The learner parameters the factory accepts.
+    defaults : tuple of (name, value)
+        The learner values used when they are not fitted.
+    factory : callable
+        Returns the learner for given tunable values.
+    family : str or None
+        "shallow" (depth <= 1), "deep" (depth >= 2) or None for the oracle
+        ``source``, which learns nothing.
+    signature : tuple
+        What the learner computes: two specs with equal signatures and equal
+        free parameters make identical predictions on every sequence (e.g.
+        count-task on a memoryless task is count-0; :func:`lookalikes`).
     """
 
     model_id: str
@@ -64,13 +80,34 @@ _FORMS = "count-K, count-K-leak, count-task, mix-D, source (K, D whole numbers)"
 def parse_model(model_id: str, task: Task, free: Iterable[str] = ()) -> ModelSpec:
     """Return the specification of one model identifier for ``task``.
 
-    Identifiers: ``count-k`` (Dirichlet counting on the last k symbols),
-    ``count-k-leak`` (the same with the leak fitted in [0, 0.95]),
-    ``count-task`` (counting on the task's own contexts), ``mix-D`` (Bayesian
-    context-tree mixture of depth D) and ``source`` (the task's true
-    probabilities). ``free`` adds ``leak`` and/or ``alpha`` to the fitted
-    parameters of every learner that has them (the mixture has no leak, the
-    source neither).
+    Parameters
+    ----------
+    model_id : str
+        ``count-k`` (Dirichlet counting on the last k symbols), ``count-k-leak``
+        (the same with the leak fitted in [0, 0.95]), ``count-task`` (counting
+        on the task's own contexts), ``mix-D`` (Bayesian context-tree mixture of
+        depth D) or ``source`` (the task's true probabilities); read
+        case-insensitively (:func:`normalise_model_id`).
+    task : Task
+    free : iterable of str
+        Adds ``leak`` and/or ``alpha`` to the fitted parameters of every
+        learner that has them (the mixture has no leak, the source neither).
+
+    Returns
+    -------
+    ModelSpec
+
+    Raises
+    ------
+    UsageError
+        For an unknown id, a depth beyond :data:`MAX_MODEL_DEPTH`, a model that
+        needs the task's source when the task gives none, or an unknown freed parameter.
+
+    Examples
+    --------
+    >>> from foretell.tasks import load_task
+    >>> parse_model("Count-02", load_task("tide-gauge")).model_id
+    'count-2'
     """
     extra = _check_free(free)
     model_id = normalise_model_id(model_id)
@@ -112,7 +149,21 @@ def parse_model(model_id: str, task: Task, free: Iterable[str] = ()) -> ModelSpe
 
 
 def normalise_model_id(model_id: str) -> str:
-    """Return the canonical spelling of a model id: stray spaces and case dropped, 'count-01' -> 'count-1'."""
+    """Return the canonical spelling of a model id: stray spaces and case dropped, leading zeros too.
+
+    Parameters
+    ----------
+    model_id : str
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> normalise_model_id(" Count-01-Leak")
+    'count-1-leak'
+    """
     text = str(model_id).strip().lower()
     if (match := _COUNT.fullmatch(text)) is not None:
         return f"count-{int(match.group(1))}{match.group(2) or ''}"
@@ -123,7 +174,25 @@ def normalise_model_id(model_id: str) -> str:
 
 def model_specs(models: Sequence[str | ModelSpec] | None, task: Task,
                 free: Iterable[str] = ()) -> list[ModelSpec]:
-    """Return the specifications of ``models`` (identifiers or specs; None = :func:`default_models`)."""
+    """Return the specifications of ``models``.
+
+    Parameters
+    ----------
+    models : sequence of str or ModelSpec, or None
+        Identifiers or specs; None: :func:`default_models`.
+    task : Task
+    free : iterable of str
+        As :func:`parse_model`.
+
+    Returns
+    -------
+    list of ModelSpec
+
+    Raises
+    ------
+    UsageError
+        For no models, an unknown id, or a model listed twice (after normalising).
+    """
     ids = default_models(task) if models is None else list(models)
     if not ids:
         raise UsageError("no models to fit")
@@ -137,15 +206,34 @@ def model_specs(models: Sequence[str | ModelSpec] | None, task: Task,
 
 
 def default_warmup(task: Task) -> int:
-    """Return the warm-up of the default model set: its largest context depth (see :func:`default_models`)."""
+    """Return the warm-up of the default model set: its largest context depth.
+
+    Parameters
+    ----------
+    task : Task
+
+    Returns
+    -------
+    int
+        The unscored trials at the start of each session when the default
+        set (:func:`default_models`) is fitted.
+    """
     return max(parse_model(m, task).depth for m in default_models(task))
 
 
 def default_models(task: Task) -> list[str]:
     """Return the default model set for ``task``.
 
-    count-0 ... count-K with K = max(task.max_depth + 1, 3), count-0-leak,
-    count-1-leak, count-task, mix-K and source.
+    Parameters
+    ----------
+    task : Task
+
+    Returns
+    -------
+    list of str
+        count-0 ... count-K with K = max(task.max_depth + 1, 3) (within the
+        learners' limit), count-0-leak, count-1-leak, count-task, mix-K and
+        source; count-task and source only when the task gives its source.
     """
     k = min(max(task.max_depth + 1, 3), MAX_MODEL_DEPTH)
     return ([f"count-{d}" for d in range(k + 1)] + ["count-0-leak", "count-1-leak"]
@@ -161,3 +249,93 @@ def _check_free(free: Iterable[str]) -> tuple[str, ...]:
         raise UsageError(f"cannot free {unknown}: only {', '.join(LEARNER_PARAMS)} can be freed "
                          "(inv_temp and lapse are always fitted)")
     return names
+
+
+def lookalikes(specs: Sequence[ModelSpec], predictions: pd.DataFrame | None = None,
+               tol: float = 1e-12) -> list[tuple[str, ...]]:
+    """Return the sets of models that cannot be told apart, each in the order of ``specs``.
+
+    Models that make identical predictions would split their evidence
+    between them; pass the sets as ``merge`` to the comparisons
+    (:mod:`foretell.compare`), which keep the first model of each set and
+    name the others in ``note``.
+
+    Parameters
+    ----------
+    specs : sequence of ModelSpec
+    predictions : pandas.DataFrame, optional
+        One row per trial and model: participant, session, block, trial,
+        model, p_<symbol>.
+    tol : float, default 1e-12
+        Largest difference of two predictions called equal.
+
+    Returns
+    -------
+    list of tuple of str
+        Sets of two or more models, ordered by their first model. Two models
+        are look-alikes when they have the same free parameters and either
+        the same :attr:`ModelSpec.signature` (identical predictions on every
+        sequence by construction, e.g. ``count-task`` on a memoryless task and
+        ``count-0``) or, as a safety net, the same trials and every p_<symbol>
+        within ``tol`` in ``predictions``; sets are closed under both relations.
+
+    Raises
+    ------
+    UsageError
+        For predictions without p_<symbol> columns or trial keys.
+    """
+    ids = [s.model_id for s in specs]
+    parent = list(range(len(specs)))
+
+    def root(i: int) -> int:
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    def join(i: int, j: int) -> None:
+        a, b = root(i), root(j)
+        parent[max(a, b)] = min(a, b)
+
+    pairs = [(i, j) for i in range(len(specs)) for j in range(i + 1, len(specs))
+             if specs[i].free == specs[j].free]
+    for i, j in pairs:
+        if specs[i].signature and specs[i].signature == specs[j].signature:
+            join(i, j)
+    if predictions is not None and len(predictions):
+        columns = sorted(c for c in predictions.columns if c.startswith("p_"))
+        keys = [c for c in ("participant", "session", "block", "trial") if c in predictions.columns]
+        if not columns or not keys:
+            raise UsageError("predictions need p_<symbol> columns and participant, session, block, trial")
+        tables = {m: part.sort_values(keys).set_index(keys)[columns]
+                  for m, part in predictions.groupby("model", sort=False) if m in ids}
+        for i, j in pairs:
+            a, b = tables.get(ids[i]), tables.get(ids[j])
+            if root(i) == root(j) or a is None or b is None or not a.index.equals(b.index):
+                continue
+            if np.allclose(a.to_numpy(float), b.to_numpy(float), rtol=0.0, atol=tol, equal_nan=True):
+                join(i, j)
+    sets: dict[int, list[str]] = {}
+    for i, model in enumerate(ids):
+        sets.setdefault(root(i), []).append(model)
+    return [tuple(members) for _, members in sorted(sets.items()) if len(members) > 1]
+
+
+def lookalike_note(kept: str, others: Sequence[str]) -> str:
+    """Return the words that say ``others`` were left out as identical to ``kept``.
+
+    Parameters
+    ----------
+    kept : str
+    others : sequence of str
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> lookalike_note("count-0", ["count-task"])
+    'count-task left out: identical to count-0 on this task'
+    """
+    return f"{', '.join(others)} left out: identical to {kept} on this task"

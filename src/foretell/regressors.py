@@ -1,12 +1,4 @@
-"""Per-trial regressors of learner models: uncertainty, surprise and the context used, for RT and EEG.
-
-For every trial and every learner model: the entropy of the learner's
-prediction before the trial, the surprise of the stimulus that came, the
-probability the learner gave to the symbol guessed, the previous trial's
-surprise and correctness, and the context the learner predicted from. A
-response made from a confident prediction, or to an expected stimulus, is
-fast; an uncertain or surprising one is slow (Hick, 1952; Hyman, 1953).
-"""
+"""Per-trial regressors of learner models: uncertainty, surprise, guess probability, the context used."""
 
 from __future__ import annotations
 
@@ -33,17 +25,59 @@ IN_BITS = ("entropy", "surprise", "prev_surprise")
 LEAK_GRID = (0.0, 0.01, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.2, 0.3, 0.4, 0.5, 0.6, 0.8, 0.95)
 """Leaks tried when a leak is chosen on the measure (denser near 0, up to the fit bound 0.95)."""
 
-Score = Callable[[str, Sequence[Mapping[str, np.ndarray]]], np.ndarray]
-"""score(participant, candidates) -> the log-likelihood of the measure under each candidate's
-regressor columns (arrays over that participant's trials in log order); used to choose a leak."""
+Score = Callable[[str, str, Sequence[Mapping[str, np.ndarray]]], np.ndarray]
+"""score(participant, model id, candidates) -> how well the measure is predicted under each
+candidate's regressor columns (arrays over that participant's trials in log order), higher better;
+used to choose a leak."""
 
 COLUMNS = ("participant", "group", "session", "block", "trial", "model", *REGRESSORS,
            "context", "missed", "rt_ok", "leak", "alpha", "params_from")
 
 
 def design(task: Task) -> str:
-    """Return the task's response design: "guess" (the default) or "reaction"."""
+    """Return the task's response design: "guess" (the default) or "reaction".
+
+    Parameters
+    ----------
+    task : Task
+
+    Returns
+    -------
+    str
+    """
     return getattr(task, "response", "guess")
+
+
+def kept_by_fit(log: ValidatedLog, excluded: pd.DataFrame | None) -> tuple[np.ndarray, list[str]]:
+    """Return (which rows of the log belong to participants the fit kept, a note per participant it left out).
+
+    A participant the fit left out (nothing scored) has no fitted learner
+    values: the steps that reuse fits leave them out too, and say so.
+
+    Parameters
+    ----------
+    log : ValidatedLog
+    excluded : pandas.DataFrame or None
+        The fit's ``excluded`` table (participant, group, reason).
+
+    Returns
+    -------
+    (numpy.ndarray of bool, list of str)
+
+    Raises
+    ------
+    UsageError
+        When the fit left out every participant of the log.
+    """
+    participant = log.frame["participant"].astype(str)
+    if excluded is None or excluded.empty:
+        return np.ones(len(participant), dtype=bool), []
+    reasons = dict(zip(excluded["participant"].astype(str), excluded["reason"].astype(str)))
+    left = [p for p in dict.fromkeys(participant) if p in reasons]
+    keep = ~participant.isin(left).to_numpy()
+    if not keep.any():
+        raise UsageError(f"the fit left out every participant of {log.source}: nothing to analyze")
+    return keep, [f"participant {p} left out, as in the fit: {reasons[p]}" for p in left]
 
 
 def learner_values(spec: ModelSpec, participant: str, *, fits: pd.DataFrame | None = None,
@@ -51,13 +85,27 @@ def learner_values(spec: ModelSpec, participant: str, *, fits: pd.DataFrame | No
     """Return (learner values, where from) for one participant and model.
 
     Per tunable parameter (leak, alpha) the first that gives a finite value
-    wins: the participant's row of ``fits`` (participant, model, leak,
-    alpha), then ``fixed`` (which, as in the fitter, applies to every model
-    that has the parameter: a fixed leak makes count-1 leaky too); alpha then defaults to 0.5 (Krichevsky &
-    Trofimov, 1981) and leak to 0 for models whose leak is not free. "where
-    from" is "fits", "fixed", "default", or "profile" when the model's leak is
-    free and still unknown (it is then chosen on the measure, see
-    :func:`regressors`).
+    wins: the participant's row of ``fits``, then ``fixed`` (which, as in the
+    fitter, applies to every model that has the parameter: a fixed leak makes
+    count-1 leaky too); alpha then defaults to 0.5 (the Krichevsky-Trofimov
+    estimator; Krichevsky & Trofimov, 1981) and leak to 0 for models whose
+    leak is not free.
+
+    Parameters
+    ----------
+    spec : ModelSpec
+    participant : str
+    fits : pandas.DataFrame, optional
+        Fitted parameters (participant, model, leak, alpha).
+    fixed : mapping of str to float, optional
+        Held values.
+
+    Returns
+    -------
+    (dict of str to float, str)
+        The values, and where from: "fits", "fixed", "default", or "held_out"
+        when the model's leak is free and still unknown (it is then chosen on
+        the measure, see :func:`regressors`).
     """
     values: dict[str, float] = {}
     source = "default"
@@ -74,16 +122,18 @@ def learner_values(spec: ModelSpec, participant: str, *, fits: pd.DataFrame | No
             values[name] = PARAMS[name].check(float(fixed[name]), "fixed")
             source = "fixed" if source == "default" else source
     if "leak" in spec.free and "leak" not in values:
-        source = "profile"
+        source = "held_out"
     return values, source
 
 
 def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] | None = None, *,
                fixed: Mapping[str, float] | None = None, fits: pd.DataFrame | None = None,
                score: Score | None = None, leak_grid: Sequence[float] = LEAK_GRID) -> pd.DataFrame:
-    """Return one tidy row per trial x model of the learner's per-trial regressors.
+    """Return one tidy row per trial x model of the learners' per-trial regressors.
 
-    Columns: participant, group, session, block, trial, model, then
+    A response made from a confident prediction, or to an expected stimulus,
+    is fast; an uncertain or surprising one is slow (Hick, 1952; Hyman,
+    1953). Columns: participant, group, session, block, trial, model, then
     ``entropy`` = -sum_a p_a log2 p_a of the learner's prediction before the
     trial (bits); ``surprise`` = -log2 p(stimulus) (bits); ``guess_prob`` = p
     of the symbol guessed (guess designs only; NaN when missed and in reaction
@@ -103,10 +153,38 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
     Learners restart at each session and carry on across blocks. A model
     whose leak is free and given neither in ``fits`` nor in ``fixed`` gets,
     per participant, the leak of ``leak_grid`` that maximises
-    ``score`` (profile likelihood on the grid; ``params_from`` "profile");
-    :func:`foretell.steps.measures.analyse_rt` passes the likelihood of its model of the
-    measure. Rows: participant by participant, model by model, trials in log
-    order.
+    ``score`` (``params_from`` "held_out");
+    :func:`foretell.steps.measures.analyze_rt` passes the held-out predictive
+    density of its model of the measure. Rows: participant by participant, model by model,
+    trials in log order.
+
+    Parameters
+    ----------
+    log : ValidatedLog
+    task : Task
+    models : sequence of str or ModelSpec, optional
+        Default: the task's default set.
+    fixed : mapping of str to float, optional
+        Held learner values (:func:`learner_values`).
+    fits : pandas.DataFrame, optional
+        Fitted learner values per participant and model.
+    score : callable, optional
+        See :data:`Score`; needed when a free leak has no value.
+    leak_grid : sequence of float, default :data:`LEAK_GRID`
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns :data:`COLUMNS`.
+
+    Raises
+    ------
+    UsageError
+        For a log not validated, an invalid grid, or a free leak with neither a value nor a ``score``.
+
+    References
+    ----------
+    Hick (1952), Q. J. Exp. Psychol. 4, 11-26; Hyman (1953), J. Exp. Psychol. 45, 188-196.
     """
     if not isinstance(log, ValidatedLog):
         raise UsageError("regressors needs a validated log: use load_log or validate_log first")
@@ -120,15 +198,15 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
         sessions = _sessions(rows)
         for spec in specs:
             values, source = learner_values(spec, pid, fits=fits, fixed=fixed)
-            if source == "profile":
+            if source == "held_out":
                 if score is None:
                     raise UsageError(
-                        f"model {spec.model_id!r} needs a leak for participant {pid}: give it in "
-                        "fits= or fixed={'leak': ...}, or use foretell.steps.measures.analyse_rt, which "
-                        "chooses it on the measure")
+                        f"model {spec.model_id!r} needs a leak for participant {pid}, and no fit gives one: "
+                        "reuse fits of this participant, hold the leak at a value, or analyze the "
+                        "measure (the rt step chooses the leak on it)")
                 candidates = [_participant_columns(spec.learner(**values, leak=leak), sessions,
                                                    task, guessing) for leak in grid]
-                scores = np.asarray(score(pid, candidates), dtype=float)
+                scores = np.asarray(score(pid, spec.model_id, candidates), dtype=float)
                 best = int(np.argmax(np.where(np.isfinite(scores), scores, -np.inf)))
                 values["leak"], cols = grid[best], candidates[best]
                 learner = spec.learner(**values)
@@ -147,6 +225,15 @@ def stack_tables(tables: Sequence[pd.DataFrame]) -> pd.DataFrame:
     The same table, categories included, as :func:`regressors` gives on
     the batches' logs together: contexts in order of first appearance,
     ``params_from`` sorted.
+
+    Parameters
+    ----------
+    tables : sequence of pandas.DataFrame
+        :func:`regressors` of consecutive batches, in order.
+
+    Returns
+    -------
+    pandas.DataFrame
     """
     if len(tables) == 1:
         return tables[0]
@@ -160,8 +247,20 @@ def session_columns(learner: object, x: np.ndarray, response: np.ndarray, n_symb
                     guessing: bool) -> dict[str, np.ndarray]:
     """Return the regressor arrays (see :func:`regressors`) of one session.
 
-    ``x`` stimulus indices, ``response`` response indices (-1 = missed);
-    ``guessing`` False (reaction designs) leaves guess_prob NaN.
+    Parameters
+    ----------
+    learner : learner
+        Any learner of :mod:`foretell.learners`.
+    x, response : numpy.ndarray of int
+        Stimulus and response indices (-1 = missed).
+    n_symbols : int
+    guessing : bool
+        False (reaction designs) leaves guess_prob NaN.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+        Each of :data:`REGRESSORS`.
     """
     pred = learner.next_proba(x, n_symbols)
     t = np.arange(len(x))

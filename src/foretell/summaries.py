@@ -1,12 +1,7 @@
-"""Plain-words summaries for the console: model comparison and optimiser convergence.
+"""Plain-words summaries for the console: model comparison, optimiser convergence, parameters at bounds.
 
-Words are backed by named criteria. A model (or family) is "ahead" only
-when one stands out: the Bayesian omnibus risk is at most :data:`BOR_MAX`
-(Rigoux et al., 2014: above it, "all models equally frequent" is the more
-probable account) and the leader's protected exceedance reaches
-:func:`stands_out_at`; it is a "clear winner" when its protected exceedance
-is at least :data:`CLEAR_PXP` as well (common practice). A participant's own
-win is graded after Kass & Raftery (1995).
+Every word is backed by a named criterion (:func:`verdict`); a participant's
+own win is graded after Kass & Raftery (1995).
 """
 
 from __future__ import annotations
@@ -15,8 +10,9 @@ from typing import Sequence
 
 import pandas as pd
 
-from .compare import lookalike_note
 from .labels import ALL, block_label
+from .models import lookalike_note
+from .params import PARAMS
 from .text import number, plural
 
 CLEAR_PXP = 0.95
@@ -30,6 +26,9 @@ STANDS_OUT_MARGIN = 0.1
 
 _GRADED = ("positive", "strong", "very-strong")
 
+_LEADER_WORDS = {"clear": "clear winner", "ahead": "ahead, not clear"}
+"""How a leader is named, by :func:`verdict` status: the same words for the whole session and each block."""
+
 _CRITERION_WORDS = {
     "bic": "BIC (log evidence -BIC/2)",
     "cv": "cross-validated log-likelihood (leave-one-block-out)",
@@ -39,12 +38,25 @@ _CRITERION_WORDS = {
 def stands_out_at(k: int) -> float:
     """Return the protected exceedance a leader among ``k`` compared models needs to stand out.
 
-    max(1/k + :data:`STANDS_OUT_MARGIN`, 1/2). Protected exceedance is 1/k for
-    every model when nothing distinguishes them, and Monte-Carlo and prior
-    effects move it by a few hundredths: 0.1 above chance is the smallest
-    lead worth reporting. Below 1/2 the other models together are more
-    probably the most frequent than the leader is, so with many models
-    1/2 is the bar.
+    Parameters
+    ----------
+    k : int
+        The models (or families) compared.
+
+    Returns
+    -------
+    float
+        max(1/k + :data:`STANDS_OUT_MARGIN`, 1/2). Protected exceedance is 1/k
+        for every model when nothing distinguishes them, and Monte-Carlo and
+        prior effects move it by a few hundredths: 0.1 above chance is the
+        smallest lead worth reporting. Below 1/2 the other models together are
+        more probably the most frequent than the leader is, so with many
+        models 1/2 is the bar.
+
+    Examples
+    --------
+    >>> stands_out_at(2), stands_out_at(10)
+    (0.6, 0.5)
     """
     return max(1.0 / k + STANDS_OUT_MARGIN, 0.5)
 
@@ -59,10 +71,30 @@ def _against(value: float, bound: float) -> str:
 
 
 def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
-    """Return (status, leader, words) for one comparison's rows (``label`` is "model" or "family").
+    """Return the verdict of one comparison: whether a model (or family) stands out, and the words for it.
 
-    status: "none" (nothing computed), "level" (nothing stands out), "ahead"
-    or "clear", after the criteria of this module.
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        One comparison's rows of a selection or families table.
+    label : {"model", "family"}
+
+    Returns
+    -------
+    status : str
+        "none" (nothing computed), "level" (nothing stands out: the omnibus
+        risk exceeds :data:`BOR_MAX`, or the leader's protected exceedance is
+        below :func:`stands_out_at`), "ahead" (it stands out) or "clear" (its
+        protected exceedance is also at least :data:`CLEAR_PXP`, common practice).
+    leader : str or None
+        The model or family that stands out.
+    words : str
+        The verdict in words, with the numbers and bars behind it.
+
+    References
+    ----------
+    Rigoux, L. et al. (2014). Bayesian model selection for group studies -
+    revisited. NeuroImage 84, 971-985 (the omnibus risk and protected exceedance).
     """
     ok = table.dropna(subset=["protected_exceedance"])
     if ok.empty:
@@ -81,15 +113,17 @@ def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
         compared = plural(k, label, "families" if label == "family" else None)
         return "level", None, (f"no {label} stands out (highest protected exceedance "
                                f"{_against(pxp, bar)} < {number(bar, '.2f')} with {compared}; {risk})")
-    if pxp >= CLEAR_PXP:
-        return "clear", leader, (f"clear winner: {leader} (protected exceedance {_against(pxp, CLEAR_PXP)} "
-                                 f">= {number(CLEAR_PXP, '.2f')}; {risk})")
-    return "ahead", leader, (f"ahead, not clear: {leader} (protected exceedance {_against(pxp, CLEAR_PXP)} "
-                             f"< {number(CLEAR_PXP, '.2f')}; {risk})")
+    status, side = ("clear", ">=") if pxp >= CLEAR_PXP else ("ahead", "<")
+    return status, leader, (f"{_LEADER_WORDS[status]}: {leader} (protected exceedance "
+                            f"{_against(pxp, CLEAR_PXP)} {side} {number(CLEAR_PXP, '.2f')}; {risk})")
 
 
 def _block_line(table: pd.DataFrame, group: str, label: str) -> str | None:
-    """Return "block 1: count-0 (pxp 0.81, BOR 0.10); ..." for one group, or None without blocks."""
+    """Return "block 1: ahead, not clear: count-0 (pxp 0.81 < 0.95, BOR 0.10); ..." for one group.
+
+    Each block is judged by :func:`verdict`, the rule of the whole session,
+    and worded with its words; None without blocks.
+    """
     mine = table[table["group"] == group]
     keys = [k for k in ("session", "block") if k in mine.columns
             and (k == "block" or mine[k].nunique() > 1)]
@@ -104,12 +138,14 @@ def _block_line(table: pd.DataFrame, group: str, label: str) -> str | None:
         if status == "none":
             parts.append(f"{where}: not computed")
             continue
-        pxp = number(float(ok["protected_exceedance"].max()), '.2f')
+        pxp = float(ok["protected_exceedance"].max())
         bor = number(float(ok["bor"].iloc[0]), '.2f')
         if leader is None:
-            parts.append(f"{where}: none stands out (top pxp {pxp}, BOR {bor})")
+            parts.append(f"{where}: none stands out (top pxp {number(pxp, '.2f')}, BOR {bor})")
         else:
-            parts.append(f"{where}: {leader} (pxp {pxp}, BOR {bor})")
+            side = ">=" if status == "clear" else "<"
+            parts.append(f"{where}: {_LEADER_WORDS[status]}: {leader} "
+                         f"(pxp {_against(pxp, CLEAR_PXP)} {side} {number(CLEAR_PXP, '.2f')}, BOR {bor})")
     return "; ".join(parts)
 
 
@@ -133,12 +169,24 @@ def summary_text(winners: pd.DataFrame, selection: pd.DataFrame,
                  merge: Sequence[Sequence[str]] = ()) -> str:
     """Return the short plain-words console summary of a model comparison.
 
-    First the criterion (BIC or CV) and the look-alike models left out
-    (``merge``, from :func:`foretell.compare.lookalikes`); then per group:
-    the model verdict (:func:`verdict`), the family verdict, each block's
-    leader with its protected exceedance (pxp) and omnibus risk (BOR), or
-    "none stands out", and the participants' own winners with how many are
-    at least "positive" evidence. Numbers never print as "-0.00".
+    Parameters
+    ----------
+    winners : pandas.DataFrame
+        :func:`foretell.compare.winners`.
+    selection, selection_blocks, families, families_blocks : pandas.DataFrame
+        :func:`foretell.compare.selection` and the others (all but the first optional).
+    merge : sequence of sequence of str
+        Look-alike sets (:func:`foretell.models.lookalikes`).
+
+    Returns
+    -------
+    str
+        The criterion (BIC or CV) and the look-alike models left out; then
+        per group the model and family verdicts (:func:`verdict`), each
+        block's verdict by the same rule and in the same words, with its
+        protected exceedance (pxp) and omnibus risk (BOR), and the
+        participants' own winners with how many are at least "positive"
+        evidence (Kass & Raftery, 1995). Numbers never print as "-0.00".
     """
     criterion = selection["criterion"].dropna()
     words = _CRITERION_WORDS.get(criterion.iloc[0], criterion.iloc[0]) if len(criterion) else "no criterion"
@@ -169,8 +217,16 @@ def summary_text(winners: pd.DataFrame, selection: pd.DataFrame,
 def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
     """Return one line on optimiser failures: whole-session fits, cross-validation folds, block refits.
 
-    A cross-validation that could not run (fewer than two blocks) is said so,
-    not counted as a failure.
+    Parameters
+    ----------
+    fits, blocks : pandas.DataFrame
+        The fit tables (converged, cv_converged).
+
+    Returns
+    -------
+    str
+        A cross-validation that could not run (fewer than two blocks) is said
+        so, not counted as a failure.
     """
     parts = [(int(fits["converged"].eq(False).sum()), len(fits), "fits")]
     notes = []
@@ -185,3 +241,35 @@ def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
             "optimiser: did not converge for " + ", ".join(failed)
             + " (see the converged and message columns; comparisons leave those fits out)")
     return "; ".join([line, *notes])
+
+
+def bound_text(fits: pd.DataFrame) -> str:
+    """Return one line counting fits that ended at a parameter bound, per parameter and side.
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        The fits table (``at_bound`` names the parameters at a bound).
+
+    Returns
+    -------
+    str
+        The side is the bound the value is nearer to
+        (:data:`foretell.params.PARAMS`). An upper inv_temp bound means
+        near-deterministic guessing, a lower lapse bound no lapses: both are
+        limits of what the data can tell, not estimates.
+    """
+    at = fits["at_bound"].fillna("").astype(str) if "at_bound" in fits.columns else pd.Series([], dtype=str)
+    counts: dict[tuple[str, str], int] = {}
+    for i in at.index[at != ""]:
+        for name in at[i].split(";"):
+            p = PARAMS[name]
+            value = float(fits.at[i, name])
+            side = "upper" if abs(value - p.high) < abs(value - p.low) else "lower"
+            counts[(name, side)] = counts.get((name, side), 0) + 1
+    if not counts:
+        return "bounds: no fitted parameter ended at a bound"
+    parts = [f"{name} at its {side} bound {PARAMS[name].high if side == 'upper' else PARAMS[name].low:g} "
+             f"in {plural(n, 'fit')}" for (name, side), n in sorted(counts.items())]
+    return (f"bounds (of {plural(len(fits), 'fit')}; at_bound in fits.csv): " + ", ".join(parts)
+            + "; read those values as limits, not estimates")

@@ -1,80 +1,69 @@
-"""Task files: the stimulus source of an experiment as a context tree."""
+"""Tasks: the stimulus source of an experiment as a context tree, and where task files are found."""
 
 from __future__ import annotations
 
 import importlib.resources
 import math
-import re
-import tomllib
-from dataclasses import dataclass, field, replace
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 from scipy import sparse
-from scipy.sparse.csgraph import connected_components
-from scipy.sparse.linalg import spsolve
 
-from .errors import Problem, TaskError
-from .labels import context_label, symbol_label_problem
+from .entropy import EntropyRate, chain_entropy_rate, entropy_bits
+from .errors import TaskError, UsageError
+from .labels import context_label
+from .taskfile import RESPONSES, TaskFields, check_task_data, read_task_file
 from .text import number, plural
+from .validation import check_count, check_seed
 
 if TYPE_CHECKING:
     import pandas as pd
 
-PROB_TOL = 1e-9
-MAX_CHAIN_STATES = 2_000_000  # pasts of maximal depth the entropy-rate chain may hold
-RESPONSES = {
-    "guess": "a guess of the next symbol before it is shown, RT from the guess prompt",
-    "reaction": "a press of the key of the symbol just shown (serial reaction time), "
-                "RT from stimulus onset",
-}
-"""The response designs a task file may declare with ``response = ...``, and what each means."""
-
-
-@dataclass(frozen=True)
-class RecurrentClass:
-    """One closed class of the chain on pasts of maximal depth and its entropy rate.
-
-    ``pasts`` are the states (index tuples, oldest first), ``stationary`` their
-    stationary probabilities within the class.
-    """
-
-    pasts: tuple[tuple[int, ...], ...]
-    stationary: np.ndarray
-    entropy_rate_bits: float
-
-
-@dataclass(frozen=True)
-class EntropyRate:
-    """Entropy rate of a task's source, in bits per symbol.
-
-    ``bits`` is the rate when the chain on pasts has a single recurrent class
-    (the rate then does not depend on the start); otherwise it is ``nan`` and
-    ``classes`` lists each recurrent class with its own rate.
-    """
-
-    bits: float
-    classes: tuple[RecurrentClass, ...]
-
-    @property
-    def irreducible(self) -> bool:
-        """True when the source has one recurrent class."""
-        return len(self.classes) == 1
+MAX_CHAIN_STATES = 2_000_000
+"""The most pasts of maximal depth that the entropy-rate chain may hold."""
 
 
 @dataclass(frozen=True, eq=False)
 class Task:
     """A stimulus source: a complete context tree over an ordered alphabet.
 
-    ``contexts[i]`` is a context as symbol indices, oldest first (``()`` is
-    the root of a memoryless source) and ``next_probs[i]`` its next-symbol
-    distribution. A task without contexts gives only the alphabet (the source
-    is not given, e.g. every participant saw their own sequence): then
-    ``has_source`` is False, ``max_depth`` is 0, and the methods that need the
-    source raise TaskError. ``response`` is the design (see :data:`RESPONSES`):
-    "guess" (the default) or "reaction". Use :func:`load_task` or
-    :meth:`from_dict` to build one: both validate.
+    Use :func:`load_task` or :meth:`from_dict` to build one: both validate.
+
+    Attributes
+    ----------
+    name : str
+    symbols : tuple of str
+        The alphabet, in the order of the symbol indices 0..m-1.
+    contexts : tuple of tuple of int
+        Each context as symbol indices, oldest first (``()`` is the root of a
+        memoryless source). Empty when the task gives only the alphabet (the
+        source is not given, e.g. every participant saw their own sequence):
+        then ``has_source`` is False, ``max_depth`` is 0, and the methods that
+        need the source raise TaskError.
+    next_probs : numpy.ndarray
+        Row i is the next-symbol distribution of ``contexts[i]`` (read-only).
+    description : str
+    block_length : int or None
+        Trials per block, when the task file gives it.
+    path : str or None
+        The task file it was read from.
+    response : str
+        The design (see :data:`foretell.taskfile.RESPONSES`): "guess" (the
+        default) or "reaction".
+    notes : tuple of str
+        What a reader should know of where the task came from (e.g. that a
+        file in the current folder was used instead of the shipped task of the
+        same name).
+
+    Examples
+    --------
+    >>> task = Task.from_dict({"name": "coin", "symbols": ["h", "t"],
+    ...                        "contexts": [{"past": [], "next": {"h": 0.5, "t": 0.5}}]})
+    >>> task.n_symbols, task.max_depth
+    (2, 0)
     """
 
     name: str
@@ -85,6 +74,7 @@ class Task:
     block_length: int | None = None
     path: str | None = None
     response: str = "guess"
+    notes: tuple[str, ...] = ()
     _lookup: dict[tuple[int, ...], int] = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -96,9 +86,26 @@ class Task:
 
     # -- construction -------------------------------------------------------------
     @classmethod
-    def from_dict(cls, data: dict[str, Any], path: str | None = None) -> "Task":
-        """Return a validated task from a parsed task-file mapping (see tasks/ for examples)."""
-        return _parse_task(data, path)
+    def from_dict(cls, data: Mapping[str, Any], path: str | None = None) -> "Task":
+        """Return a validated task from a parsed task-file mapping (see tasks/ for examples).
+
+        Parameters
+        ----------
+        data : mapping
+            The keys of a task file (:data:`foretell.taskfile.KEYS`).
+        path : str, optional
+            Where the mapping came from, for messages.
+
+        Returns
+        -------
+        Task
+
+        Raises
+        ------
+        TaskError
+            Listing every problem (see :func:`foretell.taskfile.check_task_data`).
+        """
+        return _build(check_task_data(data, path), path)
 
     # -- alphabet -----------------------------------------------------------------
     @property
@@ -123,7 +130,13 @@ class Task:
                             path=self.path)
 
     def index_of(self, symbol: str) -> int:
-        """Return the index of a symbol label; raise TaskError if it is not in the alphabet."""
+        """Return the index of a symbol label.
+
+        Raises
+        ------
+        TaskError
+            When ``symbol`` is not in the alphabet.
+        """
         try:
             return self.symbols.index(symbol)
         except ValueError:
@@ -131,12 +144,36 @@ class Task:
                             f"{', '.join(self.symbols)}", path=self.path) from None
 
     def encode(self, labels: Iterable[str]) -> np.ndarray:
-        """Return the symbol indices of a sequence of labels."""
+        """Return the symbol indices (int64) of a sequence of labels.
+
+        Raises
+        ------
+        TaskError
+            At the first label that is not in the alphabet.
+        """
+        if isinstance(labels, str):
+            raise UsageError(f"encode takes a sequence of symbol labels, not one string ({labels!r})")
         return np.array([self.index_of(s) for s in labels], dtype=np.int64)
 
     def decode(self, indices: Iterable[int]) -> list[str]:
-        """Return the labels of a sequence of symbol indices."""
-        return [self.symbols[int(i)] for i in indices]
+        """Return the labels of a sequence of symbol indices.
+
+        Raises
+        ------
+        UsageError
+            When an index is not a whole number in 0..m-1.
+        """
+        return [self.symbols[i] for i in self._indices(list(indices), "indices")]
+
+    def _indices(self, x: object, name: str = "x") -> np.ndarray:
+        """Return ``x`` as a 1-D int64 array of symbol indices; UsageError unless every entry is in 0..m-1."""
+        arr = np.asarray(x)
+        whole = arr.size == 0 or np.issubdtype(arr.dtype, np.integer) or (
+            np.issubdtype(arr.dtype, np.floating) and np.isfinite(arr).all() and (arr == np.round(arr)).all())
+        if arr.ndim != 1 or not whole or (arr.size and (arr.min() < 0 or arr.max() >= self.n_symbols)):
+            raise UsageError(f"{name} must be a 1-D sequence of symbol indices, whole numbers in "
+                             f"0..{self.n_symbols - 1} (task {self.name!r})")
+        return arr.astype(np.int64)
 
     def context_label(self, context: Sequence[int]) -> str:
         """Return a context as labels joined by '-', oldest first; the root is '*'."""
@@ -144,9 +181,26 @@ class Task:
 
     # -- the source ---------------------------------------------------------------
     def context_of(self, past: Sequence[int] | Sequence[str]) -> int:
-        """Return the index of the context that is a suffix of ``past`` (oldest first)."""
+        """Return the index of the context that is a suffix of ``past``.
+
+        Parameters
+        ----------
+        past : sequence of str or int
+            Symbol labels or indices, oldest first.
+
+        Returns
+        -------
+        int
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source, or ``past`` is too short to
+            determine a context.
+        """
         self._require_source("finding the context of a past")
         idx = [self.index_of(s) if isinstance(s, str) else int(s) for s in past]
+        idx = self._indices(idx, "past").tolist()
         for d in range(min(len(idx), self.max_depth) + 1):
             key = tuple(idx[len(idx) - d:])
             if key in self._lookup:
@@ -157,10 +211,25 @@ class Task:
     def context_indices(self, x: np.ndarray) -> np.ndarray:
         """Return, for each trial t, the context index used to predict x[t] from x[:t].
 
-        Entry t is -1 where x[:t] is too short to determine a context.
+        Parameters
+        ----------
+        x : array of int
+            One sequence of symbol indices.
+
+        Returns
+        -------
+        numpy.ndarray of int64
+            Entry t is -1 where x[:t] is too short to determine a context.
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source.
+        UsageError
+            When ``x`` holds anything but symbol indices.
         """
         self._require_source("the context of each trial")
-        x = np.asarray(x, dtype=np.int64)
+        x = self._indices(x)
         n, d = len(x), self.max_depth
         lagged = np.full((n, d), -1, dtype=np.int64)  # column j: the symbol j+1 trials back
         for j in range(d):
@@ -197,7 +266,15 @@ class Task:
         return out
 
     def next_proba(self, x: np.ndarray) -> np.ndarray:
-        """Return the true probabilities of x[t] given x[:t], shape (len(x), m); 1/m rows where undetermined."""
+        """Return the true probabilities of x[t] given x[:t], shape (len(x), m); 1/m rows where undetermined.
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source.
+        UsageError
+            When ``x`` holds anything but symbol indices.
+        """
         self._require_source("the true next-symbol probabilities")
         ctx = self.context_indices(x)
         out = np.full((len(ctx), self.n_symbols), 1.0 / self.n_symbols)
@@ -205,23 +282,83 @@ class Task:
         out[known] = self.next_probs[ctx[known]]
         return out
 
+    def impossible(self, x: np.ndarray) -> np.ndarray:
+        """Return the trials t at which x[t] cannot occur after x[:t]: its probability under the source is 0.
+
+        Trials whose context is not yet determined are never impossible.
+
+        Parameters
+        ----------
+        x : array of int
+            One sequence of symbol indices.
+
+        Returns
+        -------
+        numpy.ndarray of int64
+            The positions, ascending.
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source.
+
+        Examples
+        --------
+        >>> task = Task.from_dict({"name": "alternate", "symbols": ["a", "b"], "contexts": [
+        ...     {"past": ["a"], "next": {"a": 0.0, "b": 1.0}},
+        ...     {"past": ["b"], "next": {"a": 1.0, "b": 0.0}}]})
+        >>> task.impossible(task.encode(["a", "b", "b", "a"])).tolist()
+        [2]
+        """
+        x = self._indices(x)
+        ctx = self.context_indices(x)
+        t = np.flatnonzero(ctx >= 0)
+        return t[self.next_probs[ctx[t], x[t]] == 0]
+
     def sample(self, n: int, seed: int | np.random.Generator | None = None,
                initial: Sequence[int] | None = None) -> np.ndarray:
         """Return a stimulus sequence of ``n`` symbol indices drawn from the source.
 
-        The first ``max_depth`` symbols come from ``initial`` when given, else
-        from the stationary distribution over pasts of maximal depth (chosen
-        among recurrent classes in proportion to nothing: the class is drawn
-        uniformly when there are several).
+        Parameters
+        ----------
+        n : int
+            How many symbols (>= 0).
+        seed : int, numpy.random.Generator or None
+            A seed (whole number >= 0), a Generator (used as it is), or None
+            for fresh, unrepeatable randomness.
+        initial : sequence of int, optional
+            The past before the first symbol (at least ``max_depth`` symbol
+            indices, oldest first). By default it is drawn from the stationary
+            distribution over pasts of maximal depth (the recurrent class is
+            drawn uniformly when there are several).
+
+        Returns
+        -------
+        numpy.ndarray of int64
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source.
+        UsageError
+            When ``n``, ``seed`` or ``initial`` is not as described.
+
+        Examples
+        --------
+        >>> load_task("tide-gauge").sample(5, seed=1).shape
+        (5,)
         """
         self._require_source("sampling a stimulus sequence")
-        rng = np.random.default_rng(seed)
+        n = check_count("n", n, 0)
+        rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(
+            None if seed is None else check_seed(seed))
         d = self.max_depth
         if initial is None:
             initial = self._draw_initial(rng)
-        past = [int(s) for s in initial][-d:] if d else []
+        past = self._indices(list(initial), "initial").tolist()[-d:] if d else []
         if len(past) < d:
-            raise TaskError(f"initial past must hold {d} symbols, got {len(past)}", path=self.path)
+            raise UsageError(f"initial must hold at least {d} symbol indices (the longest context), "
+                             f"got {len(past)}")
         x = np.empty(n + d, dtype=np.int64)
         x[:d] = past
         table = self._state_contexts()  # context of every full past, coded oldest-first base m
@@ -237,35 +374,32 @@ class Task:
         return x[d:]
 
     def entropy_rate(self) -> EntropyRate:
-        """Return the exact entropy rate in bits per symbol.
+        """Return the exact entropy rate in bits per symbol (see :func:`foretell.entropy.chain_entropy_rate`).
 
-        H = sum_s pi(s) H(P(. | s)) over pasts s of maximal depth D, with pi the
-        stationary distribution of the chain s -> s[1:] + a (Cover & Thomas,
-        2006, Theorem 4.2.4, applied to the D-th order chain). Recurrent classes
-        are the strongly connected components with no edge leaving them.
+        Returns
+        -------
+        EntropyRate
+            One rate when the chain on pasts of maximal depth has a single
+            recurrent class, else each class with its own rate.
+
+        Raises
+        ------
+        TaskError
+            When the task gives no source, or the chain would have more than
+            :data:`MAX_CHAIN_STATES` states.
         """
         self._require_source("the entropy rate")
         states, trans = self._past_chain()
-        n_comp, labels = connected_components(trans, directed=True, connection="strong")
-        coo = trans.tocoo()
-        leaving = np.zeros(n_comp, dtype=bool)
-        cross = labels[coo.row] != labels[coo.col]
-        leaving[labels[coo.row[cross]]] = True
-        h_state = _entropy_bits(self.next_probs)[self._state_contexts()]
-        classes = []
-        for comp in np.flatnonzero(~leaving):
-            members = np.flatnonzero(labels == comp)
-            pi = _stationary(trans[members][:, members])
-            classes.append(RecurrentClass(
-                pasts=tuple(tuple(int(v) for v in states[i]) for i in members),
-                stationary=pi,
-                entropy_rate_bits=float(pi @ h_state[members]),
-            ))
-        bits = classes[0].entropy_rate_bits if len(classes) == 1 else math.nan
-        return EntropyRate(bits=bits, classes=tuple(classes))
+        return chain_entropy_rate(states, trans, entropy_bits(self.next_probs)[self._state_contexts()])
 
     def to_frame(self) -> "pd.DataFrame":
-        """Return the tree as a tidy table: one row per context, columns context, depth, p_<symbol>."""
+        """Return the tree as a tidy table: one row per context, columns context, depth, p_<symbol>.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Empty when the task gives no source.
+        """
         import pandas as pd
 
         table = pd.DataFrame({"context": [self.context_label(c) for c in self.contexts],
@@ -275,7 +409,14 @@ class Task:
         return table
 
     def describe(self) -> str:
-        """Return a short plain-text account of the task: alphabet, response, contexts, entropy rate."""
+        """Return a short plain-text account of the task.
+
+        Returns
+        -------
+        str
+            The alphabet, the notes on where the task came from, the response
+            design, the contexts with their probabilities and the entropy rate.
+        """
         source = (f"{plural(len(self.contexts), 'context')}, longest {self.max_depth}"
                   if self.has_source else "source not given")
         lines = [f"task {self.name!r}: {plural(self.n_symbols, 'symbol')} "
@@ -283,6 +424,7 @@ class Task:
                  + (f", {self.block_length} trials per block" if self.block_length else "")]
         if self.description:
             lines.append(self.description)
+        lines += [f"note: {note}" for note in self.notes]
         lines.append(f"response: {self.response}, {RESPONSES[self.response]}")
         if not self.has_source:
             return "\n".join(lines)
@@ -364,267 +506,69 @@ def shipped_tasks() -> dict[str, Path]:
 def load_task(path: str | Path) -> Task:
     """Return the validated task described by a TOML task file.
 
-    ``path`` is a file, or the name of a task shipped with foretell (e.g.
-    ``"lantern-relay"``, see :func:`shipped_tasks`) when no such file exists.
-    Problems name the file, the key and, where it can be found, the line.
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        A task file, or the name of a task shipped with foretell (e.g.
+        ``"lantern-relay"``, see :func:`shipped_tasks`). A bare name is the
+        shipped task unless a file of that name is in the current folder; a
+        folder of that name never hides it. When both exist, the task's
+        ``notes`` say which was used.
+
+    Returns
+    -------
+    Task
+
+    Raises
+    ------
+    TaskError
+        When the file is missing, unreadable or invalid; every problem names
+        the file, the key and, where it can be found, the line and character.
+    UsageError
+        When ``path`` is not a path or a name.
+
+    Examples
+    --------
+    >>> load_task("tide-gauge").symbols
+    ('up', 'down')
     """
+    file, notes = _locate(path)
+    data, text = read_task_file(file)
+    return _build(check_task_data(data, str(file), text), str(file), notes)
+
+
+def _locate(path: object) -> tuple[Path, tuple[str, ...]]:
+    """Return the task file that ``path`` names, and a note when a shipped task of that name was not it."""
+    if not isinstance(path, (str, Path)) or not str(path).strip():
+        raise UsageError(f"task must be a task file (TOML) or the name of a shipped task, got {path!r}")
     p = Path(path)
-    if not p.exists() and p.parent == Path(".") and p.stem in shipped_tasks():
-        p = shipped_tasks()[p.stem]
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        names = ", ".join(shipped_tasks()) or "none"
-        raise TaskError(f"task file not found (tasks shipped with foretell: {names})",
-                        path=str(p)) from None
-    except OSError as exc:
-        raise TaskError(f"cannot read the task file: {exc.strerror or exc}", path=str(p)) from None
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise TaskError("not UTF-8 text: a task file is TOML; save it as UTF-8", path=str(p),
-                        line=raw[:exc.start].count(b"\n") + 1) from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise TaskError(f"not valid TOML: {exc}", path=str(p),
-                        line=_toml_error_line(str(exc))) from None
-    return _parse_task(data, str(p), text)
+    shipped = shipped_tasks()
+    own = shipped.get(p.stem) if p.parent == Path(".") else None
+    if own is not None and p.is_dir():
+        return own, (f"'{p}' in this folder is a folder, so the task shipped with foretell under "
+                     "that name was used",)
+    if own is not None and p.is_file() and p.resolve() != own.resolve():
+        return p, (f"task file '{p}' in this folder was used, not the task shipped with foretell "
+                   "under the same name",)
+    if own is not None and not p.exists():
+        return own, ()
+    if p.is_dir():
+        raise TaskError("is a folder, not a task file", path=str(p))
+    if not p.exists():
+        raise TaskError(f"task file not found (tasks shipped with foretell: {', '.join(shipped) or 'none'})",
+                        path=str(p))
+    return p, ()
 
 
-# -- validation ---------------------------------------------------------------------
-def _parse_task(data: dict[str, Any], path: str | None, text: str | None = None) -> Task:
-    """Return the task of a parsed task file, or raise TaskError with every problem found.
-
-    ``text`` is the file's text, used to name the line of each problem.
-    """
-    problems: list[Problem] = []
-    line_of = _KeyLines(text)
-
-    def bad(msg: str, key: str | None = None) -> None:
-        problems.append(Problem(msg, path=path, line=line_of(key), column=key))
-
-    name = data.get("name")
-    if not isinstance(name, str) or not name.strip():
-        bad("'name' must be a non-empty string", "name")
-        name = Path(path).stem if path else "task"
-    description = data.get("description", "")
-    if not isinstance(description, str):
-        bad("'description' must be a string", "description")
-        description = ""
-    block_length = data.get("block_length")
-    if block_length is not None and (not isinstance(block_length, int) or isinstance(block_length, bool)
-                                     or block_length < 1):
-        bad(f"'block_length' must be a positive whole number, got {block_length!r}", "block_length")
-        block_length = None
-    response = data.get("response", "guess")
-    if not isinstance(response, str) or response not in RESPONSES:
-        bad(f"'response' must be one of {', '.join(map(repr, RESPONSES))}, got {response!r}",
-            "response")
-        response = "guess"
-    symbols = data.get("symbols")
-    if not isinstance(symbols, list) or len(symbols) < 2:
-        bad("'symbols' must be a list of at least two labels", "symbols")
-        raise TaskError(problems)
-    if not all(isinstance(s, str) for s in symbols):
-        bad(f"'symbols' must be a list of text labels, e.g. [\"up\", \"down\"]; got {symbols!r}",
-            "symbols")
-        raise TaskError(problems)
-    for s in symbols:
-        if (why := symbol_label_problem(s)) is not None:
-            bad(why, "symbols")
-    if problems:
-        raise TaskError(problems)
-    if len(set(symbols)) != len(symbols):
-        dupes = sorted({s for s in symbols if symbols.count(s) > 1})
-        bad(f"symbol labels must be unique; repeated: {', '.join(dupes)}", "symbols")
-    raw_contexts = data.get("contexts", [])
-    if "contexts" in data and (not isinstance(raw_contexts, list) or not raw_contexts):
-        bad("'contexts' must be one or more [[contexts]] tables; leave it out when the task "
-            "does not give the source", "contexts")
-    if problems:
-        raise TaskError(problems)
-
-    index = {s: i for i, s in enumerate(symbols)}
-    contexts: list[tuple[int, ...]] = []
-    rows: list[list[float]] = []
-    for k, ctx in enumerate(raw_contexts, start=1):
-        key = f"contexts[{k}]"
-        if not isinstance(ctx, dict):
-            bad("must be a table with 'past' and 'next'", key)
-            continue
-        past, nxt = ctx.get("past"), ctx.get("next")
-        label = f"{key} (past = {past!r})"
-        if not isinstance(past, list) or not all(isinstance(s, str) for s in past):
-            bad(f"{label}: 'past' must be a list of symbol labels (oldest first)", f"{key}.past")
-            continue
-        unknown = [s for s in past if s not in index]
-        if unknown:
-            bad(f"{label}: unknown {_symbols(unknown)} in 'past'", f"{key}.past")
-            continue
-        if not isinstance(nxt, dict):
-            bad(f"{label}: 'next' must be a table of symbol = probability", f"{key}.next")
-            continue
-        unknown = [s for s in nxt if s not in index]
-        missing = [s for s in symbols if s not in nxt]
-        if unknown:
-            bad(f"{label}: unknown {_symbols(unknown)} in 'next'", f"{key}.next")
-        if missing:
-            bad(f"{label}: 'next' gives no probability for {', '.join(map(repr, missing))}",
-                f"{key}.next")
-        if unknown or missing:
-            continue
-        vals = [nxt[s] for s in symbols]
-        if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in vals):
-            bad(f"{label}: probabilities must be numbers", f"{key}.next")
-            continue
-        outside = [f"{s} = {v!r}" for s, v in zip(symbols, vals)
-                   if not (math.isfinite(v) and 0 <= v <= 1)]
-        if outside:
-            negative = " (negative probability)" if any(v < 0 for v in vals) else ""
-            bad(f"{label}: {', '.join(outside)}{negative}: every probability must be a finite "
-                "number in [0, 1]", f"{key}.next")
-            continue
-        if abs(sum(vals) - 1.0) > PROB_TOL:
-            bad(f"{label}: probabilities sum to {sum(vals):.12g}, not 1 (tolerance {PROB_TOL})",
-                f"{key}.next")
-            continue
-        contexts.append(tuple(index[s] for s in past))
-        rows.append([float(v) for v in vals])
-    if problems:
-        raise TaskError(problems)
-    problems.extend(replace(p, line=line_of(p.column)) for p in _tree_problems(contexts, symbols, path))
-    if problems:
-        raise TaskError(problems)
-    return Task(name=name, symbols=tuple(symbols), contexts=tuple(contexts),
-                next_probs=np.array(rows, dtype=float).reshape(len(rows), len(symbols)),
-                description=description, block_length=block_length, path=path,
-                response=response)
-
-
-class _KeyLines:
-    """The line of a task-file key in the file's text: best effort, None when not found.
-
-    Keys are top-level names ("symbols"), "contexts[k]" (the k-th
-    ``[[contexts]]`` table) or "contexts[k].past" / "contexts[k].next".
-    """
-
-    _TABLE = re.compile(r"\s*\[")
-    _CONTEXTS = re.compile(r"\s*\[\[\s*contexts\s*\]\]")
-
-    def __init__(self, text: str | None) -> None:
-        self.lines = text.splitlines() if text else []
-
-    def __call__(self, key: str | None) -> int | None:
-        if key is None or not self.lines:
-            return None
-        match = re.fullmatch(r"contexts\[(\d+)\](?:\.(\w+))?", key)
-        if match is None:
-            return self._assignment(key.split(".", 1)[0], 0)
-        tables = [i for i, line in enumerate(self.lines) if self._CONTEXTS.match(line)]
-        k = int(match.group(1))
-        if len(tables) < k:  # contexts written as an inline array: the line of 'contexts ='
-            return self._assignment("contexts", 0)
-        start = tables[k - 1]
-        inner = self._assignment(match.group(2), start + 1) if match.group(2) else None
-        return inner or start + 1
-
-    def _assignment(self, key: str, start: int) -> int | None:
-        """Return the line of ``key = ...`` in the table that begins at line index ``start``."""
-        pattern = re.compile(rf"\s*(?:{re.escape(key)}|\"{re.escape(key)}\")\s*=")
-        for i in range(start, len(self.lines)):
-            if self._TABLE.match(self.lines[i]):
-                return None
-            if pattern.match(self.lines[i]):
-                return i + 1
-        return None
-
-
-def _tree_problems(contexts: list[tuple[int, ...]], symbols: list[str],
-                   path: str | None) -> list[Problem]:
-    """Return the problems that keep ``contexts`` from being a complete context tree.
-
-    Complete: every past of maximal depth has exactly one context as a suffix,
-    i.e. no context is a suffix of another and every inner node has all m children.
-    """
-    def show(c: Sequence[int]) -> str:
-        return "[" + ", ".join(symbols[i] for i in c) + "]"
-
-    problems: list[Problem] = []
-    seen: dict[tuple[int, ...], int] = {}
-    for k, c in enumerate(contexts, start=1):
-        if c in seen:
-            problems.append(Problem(f"context {show(c)} is given twice (contexts[{seen[c]}] and "
-                                    f"contexts[{k}])", path=path, column=f"contexts[{k}]"))
-        seen.setdefault(c, k)
-    if problems:
-        return problems
-    for c in contexts:  # a context that is a suffix of another: both match the longer past
-        for d in range(len(c)):
-            if c[len(c) - d:] in seen:
-                problems.append(Problem(
-                    f"contexts {show(c[len(c) - d:])} and {show(c)} both match a past ending in "
-                    f"{show(c)}: one context may not be a suffix of another", path=path,
-                    column=f"contexts[{seen[c]}]"))
-    if problems:
-        return problems
-    # every proper suffix of a context is an inner node; the tree is complete when each inner
-    # node's m children (one older symbol prepended) are inner nodes or contexts
-    inner = {c[len(c) - d:] for c in contexts for d in range(len(c))}
-    for node in sorted(inner, key=lambda c: (len(c), c)):
-        for a in range(len(symbols)):
-            child = (a,) + node
-            if child not in inner and child not in seen:
-                problems.append(Problem(f"no context matches a past ending in {show(child)}: the "
-                                        "contexts are not a complete context tree", path=path,
-                                        column="contexts"))
-                if len(problems) >= 5:
-                    return problems
-    return problems
+def _build(fields: TaskFields, path: str | None, notes: tuple[str, ...] = ()) -> Task:
+    """Return the Task of checked task-file fields."""
+    return Task(name=fields.name, symbols=fields.symbols, contexts=fields.contexts,
+                next_probs=np.array(fields.rows, dtype=float).reshape(len(fields.rows), len(fields.symbols)),
+                description=fields.description, block_length=fields.block_length, path=path,
+                response=fields.response, notes=notes)
 
 
 # -- small numerical helpers ---------------------------------------------------------
 def _suffix_code(context: Sequence[int], m: int) -> int:
     """Return a unique integer for a suffix: sum over lag j (1 = newest) of (s+1)(m+1)^(j-1)."""
     return sum((s + 1) * (m + 1) ** j for j, s in enumerate(reversed(context)))
-
-
-def _entropy_bits(probs: np.ndarray) -> np.ndarray:
-    """Return the Shannon entropy in bits of each row (0 log 0 = 0)."""
-    p = np.asarray(probs, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        terms = np.where(p > 0, -p * np.log2(p), 0.0)
-    return terms.sum(axis=-1) + 0.0  # -p log p of p = 1 is a negative zero
-
-
-def _stationary(trans: sparse.csr_matrix) -> np.ndarray:
-    """Return the stationary distribution of an irreducible stochastic matrix.
-
-    Solves pi (P - I) = 0 with one balance equation replaced by sum(pi) = 1
-    (a standard way to make the system non-singular; common practice).
-    """
-    n = trans.shape[0]
-    if n == 1:
-        return np.ones(1)
-    a = (trans.T - sparse.identity(n, format="csr")).tolil()
-    a[n - 1, :] = np.ones(n)
-    b = np.zeros(n)
-    b[-1] = 1.0
-    pi = spsolve(a.tocsc(), b)
-    pi = np.clip(np.atleast_1d(pi), 0.0, None)
-    return pi / pi.sum()
-
-
-def _symbols(labels: list[str]) -> str:
-    """Return "symbol 'a'" or "symbols 'a', 'b'"."""
-    return ("symbol " if len(labels) == 1 else "symbols ") + ", ".join(map(repr, labels))
-
-
-def _toml_error_line(message: str) -> int | None:
-    marker = "(at line "
-    if marker in message:
-        tail = message.split(marker, 1)[1]
-        digits = tail.split(",", 1)[0]
-        if digits.isdigit():
-            return int(digits)
-    return None

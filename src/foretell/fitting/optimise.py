@@ -1,14 +1,7 @@
-"""Batched maximum likelihood of the choice rule: many small fits solved together.
+"""The batched optimiser of the choice rule: compiled sums (value, gradient, Hessian), projected Newton, Brent.
 
-A *row* is one fit: a set of trials (indices into a stack of learner log
-predictions) and its own inv_temp and lapse. Every row's negative
-log-likelihood, gradient and Hessian come from one compiled pass over its
-trials (:func:`choice_sums`), and a bounded projected Newton method solves
-every row of a batch in one compiled loop (:func:`newton`), each row on its
-own, so a row's result never depends on its batch. Learner parameters are searched outside, one
-coordinate at a time, by Brent's bounded minimiser written as a generator
-(:func:`brent`) so that many searches advance together and their function
-values are computed in one batch.
+A *row* is one fit: a set of trials of a stack of learner log predictions,
+with its own inv_temp and lapse; every row is solved on its own.
 """
 
 from __future__ import annotations
@@ -215,9 +208,28 @@ def choice_sums(log_pred: np.ndarray, guess: np.ndarray, ptr: np.ndarray, idx: n
                 rows: np.ndarray, inv_temp: np.ndarray, lapse: np.ndarray) -> np.ndarray:
     """Return (len(rows), 6): ln L, its gradient and Hessian in (inv_temp, lapse) for each row.
 
-    Row r sums over trials ``idx[ptr[r]:ptr[r+1]]`` of ``log_pred`` (n, m) and
-    ``guess`` (n,). Columns: ln L, d/d inv_temp, d/d lapse, d2/d inv_temp2,
-    d2/d inv_temp d lapse, d2/d lapse2. With s = log_softmax(b l),
+    Parameters
+    ----------
+    log_pred : numpy.ndarray
+        (n, m) learner log predictions.
+    guess : numpy.ndarray
+        (n,) guessed symbol indices.
+    ptr, idx : numpy.ndarray
+        CSR layout: row r sums over trials ``idx[ptr[r]:ptr[r+1]]``.
+    rows : numpy.ndarray
+        The rows to sum.
+    inv_temp, lapse : numpy.ndarray
+        Each row's parameter values.
+
+    Returns
+    -------
+    numpy.ndarray
+        Columns ln L, d/d inv_temp, d/d lapse, d2/d inv_temp2,
+        d2/d inv_temp d lapse, d2/d lapse2.
+
+    Notes
+    -----
+    With l the log predictions, b = inv_temp, s = log_softmax(b l),
     P = (1 - lapse) e^{s_g} + lapse/m, w = (1 - lapse) e^{s_g} / P,
     u = l_g - E_pi[l] and v = Var_pi[l] (pi = softmax(b l)):
     d ln P/db = w u, d2/db2 = w (u^2 - v) - (w u)^2,
@@ -236,8 +248,15 @@ def choice_sums(log_pred: np.ndarray, guess: np.ndarray, ptr: np.ndarray, idx: n
 class ChoiceSpace:
     """The optimiser coordinates of the choice parameters: which are free, their bounds and scale.
 
-    z = log(value) for log-scale parameters (PARAMS), the value otherwise;
-    held parameters keep ``held`` values.
+    z = log(value) for log-scale parameters (:data:`foretell.params.PARAMS`),
+    the value otherwise.
+
+    Attributes
+    ----------
+    free : (bool, bool)
+        Whether inv_temp and lapse are fitted.
+    held : (float, float)
+        The values of the parameters that are not (NaN for free ones).
     """
 
     free: tuple[bool, bool]
@@ -292,11 +311,21 @@ class ChoiceSpace:
         return np.where(free, self.to_z(values), 0.0)
 
     def extremes(self, z: np.ndarray) -> np.ndarray:
-        """Return copies of z (2,) with one free coordinate moved to one of its bounds: (2 x free, 2).
+        """Return copies of z with one free coordinate moved to one of its bounds.
 
         On few trials the choice likelihood can have modes at the ends of the
         ranges (guesses explained by chance: lapse high or inv_temp low; or a
         near-deterministic guesser with a high lapse), so fits start there too.
+
+        Parameters
+        ----------
+        z : numpy.ndarray
+            (2,) optimiser coordinates.
+
+        Returns
+        -------
+        numpy.ndarray
+            (2 x the free coordinates, 2).
         """
         lo, hi = self.bounds.T
         out = [np.where(np.arange(2) == i, end, z) for i in range(2) if self.free[i] for end in (lo[i], hi[i])]
@@ -310,7 +339,17 @@ class ChoiceSpace:
 
 @dataclass(frozen=True)
 class Batch:
-    """Rows of fits over a stack of learner predictions (CSR layout: row r owns idx[ptr[r]:ptr[r+1]])."""
+    """Rows of fits over a stack of learner predictions.
+
+    Attributes
+    ----------
+    log_pred : numpy.ndarray
+        (n, m) learner log predictions of every trial of the batch.
+    guess : numpy.ndarray
+        (n,) the guess of every trial.
+    ptr, idx : numpy.ndarray
+        CSR layout: row r owns the trials ``idx[ptr[r]:ptr[r+1]]``.
+    """
 
     log_pred: np.ndarray
     guess: np.ndarray
@@ -349,7 +388,20 @@ class Batch:
 
 @dataclass(frozen=True)
 class NewtonResult:
-    """Per row: coordinates z (R, 2), negative ln L, projected gradient, converged, iterations."""
+    """The result of :func:`newton`, per row.
+
+    Attributes
+    ----------
+    z : numpy.ndarray
+        (R, 2) optimiser coordinates at the end.
+    nll : numpy.ndarray
+        Negative ln L there.
+    pgrad : numpy.ndarray
+        The largest projected gradient component there.
+    converged : numpy.ndarray
+        Finite nll and projected gradient below PGTOL.
+    iterations : numpy.ndarray
+    """
 
     z: np.ndarray
     nll: np.ndarray
@@ -362,6 +414,23 @@ def newton(batch: Batch, space: ChoiceSpace, z0: np.ndarray, rows: np.ndarray | 
            gtol: float = GTOL) -> NewtonResult:
     """Return the minimum of every row's negative ln L from starts z0 (R, 2), within the bounds.
 
+    Parameters
+    ----------
+    batch : Batch
+    space : ChoiceSpace
+    z0 : numpy.ndarray
+        (R, 2) starts.
+    rows : numpy.ndarray, optional
+        The batch row each start belongs to (default: start r is row r).
+    gtol : float, default GTOL
+        Projected gradient at which a row stops.
+
+    Returns
+    -------
+    NewtonResult
+
+    Notes
+    -----
     Projected Newton (Bertsekas, 1982), one compiled loop per row: coordinates
     at a bound whose gradient points outward are held; the others take a
     Newton step with |H| (H's eigenvalues replaced by their absolute values,
@@ -371,6 +440,13 @@ def newton(batch: Batch, space: ChoiceSpace, z0: np.ndarray, rows: np.ndarray | 
     the function, or after MAX_ITER iterations; it has converged when its
     projected gradient is below PGTOL. Rows are solved independently: a row's
     result does not depend on the other rows of the batch.
+
+    References
+    ----------
+    Bertsekas, D. P. (1982). Projected Newton methods for optimization problems
+    with simple constraints. SIAM J. Control Optim. 20, 221-246.
+    Dauphin, Y. et al. (2014). Identifying and attacking the saddle point
+    problem in high-dimensional non-convex optimization. NeurIPS.
     """
     rows = np.arange(len(z0)) if rows is None else np.asarray(rows, dtype=np.int64)
     lo, hi = space.bounds.T
@@ -389,9 +465,28 @@ def brent(low: float, high: float, x0: float, f0: float,
           xtol: float = 1e-7) -> Generator[float, float, tuple[float, float, bool]]:
     """Yield points to evaluate; receive their values; return (x, f(x), converged) of the minimum on [low, high].
 
-    Brent's method (golden section with parabolic steps; Brent, 1973,
-    "Algorithms for Minimization without Derivatives", ch. 5), started at a
-    known point x0 with value f0; it never returns a point worse than x0.
+    Written as a generator, so that many line searches advance together and
+    their function values are computed in one batch.
+
+    Parameters
+    ----------
+    low, high : float
+        The interval.
+    x0, f0 : float
+        A known point and its value; the result is never worse.
+    xtol : float, default 1e-7
+        Absolute tolerance on x.
+
+    Returns
+    -------
+    (float, float, bool)
+        The generator's return value: x, f(x), and whether it converged
+        within 200 steps.
+
+    References
+    ----------
+    Brent, R. P. (1973). Algorithms for Minimization without Derivatives, ch. 5
+    (golden section with parabolic steps).
     """
     golden = 0.5 * (3.0 - math.sqrt(5.0))
     a, b = low, high

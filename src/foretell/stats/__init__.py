@@ -1,1 +1,1 @@
-"""Pure statistical kernels (no pandas, I/O or PyMC): regression, permutation tests, model selection."""
+"""Pure statistical kernels (no pandas, I/O or PyMC): regression, permutation tests, HDIs, model selection."""

@@ -1,32 +1,7 @@
-"""Random-effects Bayesian model selection kernels: variational and Gibbs, models and families (pure numpy).
+"""Random-effects Bayesian model selection (pure numpy): variational and Gibbs posteriors, models and families.
 
 Every function takes a log-evidence matrix L (N subjects x K models, in nats,
-e.g. -BIC/2) and returns a frozen result. The generative model (Stephan et
-al., 2009): model frequencies r ~ Dirichlet(alpha0); each subject's model
-m_n ~ Categorical(r); the subject's data given m_n = k have evidence e^{L_nk}.
-
-- :func:`rfx_bms`: the variational posterior of Stephan et al. (2009), with the
-  Bayesian omnibus risk and protected exceedance of Rigoux et al. (2014).
-- :func:`rfx_gibbs`: the Gibbs sampler of Penny et al. (2010), which gives draws
-  from the exact posterior of r (the variational posterior can be far from it
-  when models tie, see :func:`family_bms`).
-- :func:`family_bms`: family inference (Penny et al., 2010) by either method.
-- :func:`exceedance_prob`: exceedance probabilities of a Dirichlet.
-
-References
-----------
-Stephan, K. E., Penny, W. D., Daunizeau, J., Moran, R. J., & Friston, K. J.
-(2009). Bayesian model selection for group studies. NeuroImage 46, 1004-1017.
-Penny, W. D., Stephan, K. E., Daunizeau, J., et al. (2010). Comparing
-families of dynamic causal models. PLoS Comput. Biol. 6, e1000709.
-Rigoux, L., Stephan, K. E., Friston, K. J., & Daunizeau, J. (2014). Bayesian
-model selection for group studies - revisited. NeuroImage 84, 971-985.
-Chib, S. (1995). Marginal likelihood from the Gibbs output. JASA 90, 1313-1321.
-Gelman, A., Carlin, J. B., Stern, H. S., et al. (2013). Bayesian Data
-Analysis, 3rd ed., ch. 11 (split R-hat, effective sample size).
-Vehtari, A., Gelman, A., Simpson, D., Carpenter, B., & Buerkner, P.-C. (2021).
-Rank-normalization, folding, and localization: an improved R-hat. Bayesian
-Analysis 16, 667-718 (thresholds R-hat < 1.01, ESS > 400).
+e.g. -BIC/2) under the generative model of Stephan et al. (2009).
 """
 
 from __future__ import annotations
@@ -36,32 +11,33 @@ from typing import Mapping, Sequence
 
 import numpy as np
 from scipy import integrate, stats
-from scipy.special import digamma, gammainc, gammaln, logsumexp, softmax, xlogy
+from scipy.special import digamma, expit, gammainc, gammaln, logsumexp, softmax, xlogy
 
-from ..errors import UsageError
-
-_CONSTANT = 1e-20
-"""Within-chain variance below which a monitored quantity counts as constant (e.g. a family of every model)."""
-
-RHAT_MAX = 1.01
-"""Largest split R-hat of a reported frequency for a converged Gibbs run (Vehtari et al., 2021)."""
-
-ESS_MIN = 400
-"""Smallest effective sample size of a reported frequency for a converged Gibbs run (Vehtari et al., 2021)."""
+from foretell.errors import UsageError
+from foretell.stats.convergence import ESS_MIN, RHAT_MAX
+from foretell.stats.gibbs import sample_frequencies
 
 
 @dataclass(frozen=True)
 class BMSResult:
-    """Variational posterior of random-effects model selection over K models (Stephan et al., 2009).
+    """Variational posterior of random-effects model selection over K models (:func:`rfx_bms`).
 
-    ``alpha`` is the Dirichlet posterior over model frequencies,
-    ``expected_freq`` = alpha / sum(alpha), ``exceedance`` the probability
-    that each model is more frequent than every other, ``bor`` the Bayesian
-    omnibus risk, ``protected_exceedance`` = (1 - bor) * exceedance + bor / K,
-    ``posterior`` (N, K) the probability that subject n's data came from
-    model k, ``free_energy`` (F1, a lower bound on the log evidence of the
-    random-effects model) and ``null_log_evidence`` (F0) in nats, ``n_iter``
-    and ``converged`` describe the variational iterations.
+    Attributes
+    ----------
+    alpha0, alpha : numpy.ndarray, shape (K,)
+        The Dirichlet prior and posterior over model frequencies.
+    expected_freq, exceedance, protected_exceedance : numpy.ndarray
+        alpha / sum(alpha); the probability that each model is more frequent
+        than every other; (1 - bor) exceedance + bor / K.
+    bor : float
+        The Bayesian omnibus risk.
+    posterior : numpy.ndarray, shape (N, K)
+        The probability that subject n's data came from model k.
+    free_energy, null_log_evidence : float
+        F1 (a lower bound on the log evidence of the random-effects model)
+        and F0, in nats.
+    n_iter, converged : int, bool
+        The variational iterations.
     """
 
     alpha0: np.ndarray
@@ -81,22 +57,35 @@ class BMSResult:
 
 @dataclass(frozen=True)
 class GibbsBMSResult:
-    """Gibbs-sampled posterior of random-effects model selection over K models (Penny et al., 2010).
+    """Gibbs-sampled posterior of random-effects model selection over K models (:func:`rfx_gibbs`).
 
-    ``draws`` (n_chains * n_draws, K) are draws of the model frequencies r
-    from the exact posterior; ``expected_freq`` is E[r | L], Rao-Blackwellised:
-    the mean over draws of (alpha0 + c) / (sum alpha0 + N), c the sampled
-    assignment counts; ``alpha`` = alpha0 + E[c] (so ``expected_freq`` =
-    alpha / sum alpha; the posterior itself is not a Dirichlet);
-    ``exceedance`` the fraction of draws in which each model is the most
-    frequent; ``log_evidence`` Chib's (1995) estimate of the log evidence of
-    the random-effects model; ``null_log_evidence`` F0 and ``bor`` = 1 / (1 +
-    exp(log_evidence - F0)) as in Rigoux et al. (2014), ``protected_exceedance``
-    = (1 - bor) * exceedance + bor / K; ``posterior`` (N, K) the fraction of
-    draws assigning subject n to model k. ``rhat`` and ``ess`` are the split
-    R-hat and effective sample size of each monitored frequency (the models'
-    here, the families' in a family result); ``converged`` is max rhat <
-    :data:`RHAT_MAX` and min ess >= :data:`ESS_MIN`; ``n_draws`` is per chain.
+    Attributes
+    ----------
+    alpha0 : numpy.ndarray, shape (K,)
+    alpha : numpy.ndarray
+        alpha0 + E[c], c the sampled assignment counts (so ``expected_freq``
+        = alpha / sum alpha; the posterior itself is not a Dirichlet).
+    draws : numpy.ndarray, shape (n_chains * n_draws, K)
+        Draws of the model frequencies r from the exact posterior.
+    expected_freq : numpy.ndarray
+        E[r | L], Rao-Blackwellised: the mean over draws of
+        (alpha0 + c) / (sum alpha0 + N).
+    exceedance, protected_exceedance : numpy.ndarray
+        The fraction of draws in which each model is the most frequent; (1 - bor) exceedance + bor / K.
+    bor : float
+        1 / (1 + exp(log_evidence - F0)).
+    posterior : numpy.ndarray, shape (N, K)
+        The fraction of draws assigning subject n to model k.
+    log_evidence, null_log_evidence : float
+        Chib's (1995) estimate of the log evidence of the random-effects
+        model, and F0.
+    rhat, ess : numpy.ndarray
+        Split R-hat and effective sample size of each monitored frequency
+        (the models' here, the families' in a family result).
+    n_chains, n_draws : int
+        Chains, and draws per chain.
+    converged : bool
+        max rhat < RHAT_MAX and min ess >= ESS_MIN (:mod:`foretell.stats.convergence`).
     """
 
     alpha0: np.ndarray
@@ -120,18 +109,26 @@ class GibbsBMSResult:
 
 @dataclass(frozen=True)
 class FamilyBMSResult:
-    """Posterior of family-level random-effects selection (Penny et al., 2010).
+    """Posterior of family-level random-effects selection (:func:`family_bms`).
 
-    ``families`` names the families in the order of the arrays; ``members``
-    gives each family's model columns; ``alpha`` is the sum of its models'
-    ``alpha`` (for the variational method the family Dirichlet posterior, by
-    the aggregation property of the Dirichlet); ``expected_freq``,
-    ``exceedance``, ``bor`` and ``protected_exceedance`` = (1 - bor) * xp +
-    bor / F are at the family level; ``draws`` (Gibbs only, else None) are
-    draws of the family frequencies (the sum of the member frequencies of
-    each draw); ``models`` is the underlying model-level result, fitted with
-    the family-balanced prior; ``method`` and ``converged`` are those of
-    ``models``.
+    Attributes
+    ----------
+    families : tuple of str
+        The families, in the order of the arrays.
+    members : tuple of tuple of int
+        Each family's model columns.
+    alpha : numpy.ndarray
+        The sum of its models' alpha (for the variational method the family
+        Dirichlet posterior, by the aggregation property of the Dirichlet).
+    expected_freq, exceedance, protected_exceedance : numpy.ndarray
+        At the family level; pxp = (1 - bor) xp + bor / F.
+    bor : float
+    draws : numpy.ndarray or None
+        Gibbs only: draws of the family frequencies (the sum of the member
+        frequencies of each draw).
+    models : BMSResult or GibbsBMSResult
+        The model-level result, fitted with the family-balanced prior (its
+        ``method`` and ``converged`` are the family result's).
     """
 
     families: tuple[str, ...]
@@ -204,7 +201,29 @@ def exceedance_prob(alpha: np.ndarray, *, method: str = "exact", n_samples: int 
     (r = G / sum G with G_k ~ Gamma(alpha_k) independent, so r_k is the largest
     iff G_k is): xp_k = int_0^inf f_{a_k}(g) prod_{j != k} F_{a_j}(g) dg.
     ``method="sampling"``: the fraction of ``n_samples`` Dirichlet draws in
-    which model k is the largest, from ``rng`` (a Generator or a seed; needed).
+    which model k is the largest.
+
+    Parameters
+    ----------
+    alpha : numpy.ndarray, shape (K,)
+        Dirichlet parameters.
+    method, n_samples, rng : str, int, numpy.random.Generator or int
+        "exact" (default), or "sampling" with ``n_samples`` draws from ``rng`` (then needed).
+
+    Returns
+    -------
+    numpy.ndarray, shape (K,)
+
+    Raises
+    ------
+    UsageError
+        For an unknown method, or sampling without ``rng``.
+
+    References
+    ----------
+    Stephan, K. E., Penny, W. D., Daunizeau, J., Moran, R. J., & Friston,
+    K. J. (2009). Bayesian model selection for group studies. NeuroImage 46,
+    1004-1017.
     """
     a = np.asarray(alpha, dtype=float)
     k = a.size
@@ -267,9 +286,36 @@ def rfx_bms(log_evidence: np.ndarray, alpha0: float | np.ndarray = 1.0, *, tol: 
     mean r0 = alpha0 / sum alpha0 (all models equally frequent for a uniform
     alpha0), and pxp = (1 - BOR) xp + BOR / K.
 
-    ``L`` is in nats (e.g. -BIC/2). An entry -inf means the model cannot produce
-    that subject's data. With one model, xp = pxp = 1 and BOR is NaN (there is
-    nothing to compare).
+    With one model, xp = pxp = 1 and BOR is NaN (there is nothing to compare).
+
+    Parameters
+    ----------
+    log_evidence : numpy.ndarray, shape (N, K)
+        L in nats (e.g. -BIC/2); -inf means the model cannot produce that
+        subject's data.
+    alpha0 : float or numpy.ndarray, default 1
+        The Dirichlet prior.
+    tol, max_iter : float and int, default 1e-10 and 10000
+    exceedance_method, n_samples, rng
+        Passed to :func:`exceedance_prob`.
+
+    Returns
+    -------
+    BMSResult
+
+    Raises
+    ------
+    UsageError
+        For evidence with NaN or +inf, a subject no model can explain, or an invalid prior.
+
+    References
+    ----------
+    Stephan, K. E., Penny, W. D., Daunizeau, J., Moran, R. J., & Friston,
+    K. J. (2009). Bayesian model selection for group studies. NeuroImage 46,
+    1004-1017.
+    Rigoux, L., Stephan, K. E., Friston, K. J., & Daunizeau, J. (2014).
+    Bayesian model selection for group studies - revisited. NeuroImage 84,
+    971-985.
     """
     lme = _check_evidence(log_evidence)
     n, k = lme.shape
@@ -298,104 +344,6 @@ def rfx_bms(log_evidence: np.ndarray, alpha0: float | np.ndarray = 1.0, *, tol: 
 # --------------------------------------------------------------------------- Gibbs sampler
 
 
-def split_rhat(chains: np.ndarray) -> np.ndarray:
-    """Return the split R-hat of each column of ``chains`` (n_chains, n_draws, Q) (Gelman et al., 2013).
-
-    Each chain is cut in halves; with W the mean within-half variance and B/n
-    the variance of the half means, var+ = (n - 1) / n W + B / n and
-    R-hat = sqrt(var+ / W). A constant column gives 1.
-    """
-    halves = _split(chains)
-    n = halves.shape[1]
-    w = halves.var(axis=1, ddof=1).mean(axis=0)
-    b_over_n = halves.mean(axis=1).var(axis=0, ddof=1)
-    var_plus = (n - 1) / n * w + b_over_n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rhat = np.sqrt(var_plus / w)
-    return np.where(w > _CONSTANT, rhat, 1.0)
-
-
-def effective_sample_size(chains: np.ndarray) -> np.ndarray:
-    """Return the effective sample size of each column of ``chains`` (n_chains, n_draws, Q).
-
-    Multi-chain estimate of Gelman et al. (2013, ch. 11) on split chains:
-    rho_t = 1 - (W - mean_c acov_c(t)) / var+, summed over Geyer's initial
-    positive sequence of pairs (rho_{2j} + rho_{2j+1} > 0), tau = -1 + 2 sum
-    of those pairs, ESS = M n / tau. A constant column gives M n.
-    """
-    halves = _split(chains)
-    m, n, q = halves.shape
-    centred = halves - halves.mean(axis=1, keepdims=True)
-    size = 1 << int(np.ceil(np.log2(2 * n)))
-    spectrum = np.fft.rfft(centred, n=size, axis=1)
-    acov = np.fft.irfft(spectrum * np.conj(spectrum), n=size, axis=1)[:, :n] / n  # (m, n, q)
-    w = halves.var(axis=1, ddof=1).mean(axis=0)
-    var_plus = (n - 1) / n * w + halves.mean(axis=1).var(axis=0, ddof=1)
-    ess = np.full(q, float(m * n))
-    for j in np.flatnonzero(w > _CONSTANT):
-        rho = 1.0 - (w[j] - acov[:, :, j].mean(axis=0)) / var_plus[j]
-        rho[0] = 1.0
-        pairs = rho[: n - n % 2].reshape(-1, 2).sum(axis=1)
-        stop = np.flatnonzero(pairs <= 0)
-        pairs = pairs[: stop[0] if stop.size else pairs.size]
-        pairs = np.minimum.accumulate(pairs)  # Geyer's initial monotone sequence
-        tau = -1.0 + 2.0 * pairs.sum()
-        ess[j] = m * n / max(tau, 1.0 / np.log10(m * n))
-    return ess
-
-
-def _split(chains: np.ndarray) -> np.ndarray:
-    c = np.asarray(chains, dtype=float)
-    half = c.shape[1] // 2
-    return np.concatenate([c[:, :half], c[:, half: 2 * half]], axis=0)
-
-
-def _gibbs(lme: np.ndarray, a0: np.ndarray, members: Sequence[Sequence[int]], rng: np.random.Generator,
-           n_chains: int, n_draws: int, burn_in: int, max_draws: int):
-    """Return (r draws (C, S, K), count draws (C, S, K), assignment frequencies (N, K), rhat, ess).
-
-    One sweep (Penny et al., 2010): m_n ~ Categorical(r_k e^{L_nk} / sum_j r_j e^{L_nj})
-    for every subject (Gumbel-max), then r ~ Dirichlet(alpha0 + counts of m).
-    The chains run in parallel; after ``burn_in`` sweeps ``n_draws`` are kept,
-    doubled until the monitored frequencies (sums of r over each of ``members``)
-    reach R-hat < RHAT_MAX and ESS >= ESS_MIN, or ``max_draws`` is reached.
-    """
-    n, k = lme.shape
-    shifted = lme - lme.max(axis=1, keepdims=True)
-    tiny = np.finfo(float).tiny
-    chain_offset = (np.arange(n_chains) * k)[:, None]
-    subject_offset = np.arange(n) * k
-    assigned = np.zeros(n * k)
-
-    def sweep(r: np.ndarray, keep: bool) -> tuple[np.ndarray, np.ndarray]:
-        logits = shifted[None] + np.log(np.maximum(r, tiny))[:, None, :]
-        m = np.argmax(logits + rng.gumbel(size=logits.shape), axis=2)
-        counts = np.bincount((m + chain_offset).ravel(), minlength=n_chains * k).reshape(n_chains, k)
-        if keep:
-            assigned[:] += np.bincount((m + subject_offset).ravel(), minlength=n * k)
-        g = rng.standard_gamma(a0 + counts)
-        return g / g.sum(axis=1, keepdims=True), counts
-
-    start = rng.standard_gamma(a0, size=(n_chains, k)) + tiny
-    r = start / start.sum(axis=1, keepdims=True)
-    for _ in range(burn_in):
-        r, _counts = sweep(r, False)
-    r_draws, c_draws = [], []
-    target = n_draws
-    while True:
-        for _ in range(target - len(r_draws)):
-            r, counts = sweep(r, True)
-            r_draws.append(r)
-            c_draws.append(counts)
-        rs = np.stack(r_draws, axis=1)
-        monitored = np.stack([rs[:, :, list(cols)].sum(axis=2) for cols in members], axis=2)
-        rhat, ess = split_rhat(monitored), effective_sample_size(monitored)
-        if (rhat.max() < RHAT_MAX and ess.min() >= ESS_MIN) or target >= max_draws:
-            break
-        target = min(2 * target, max_draws)
-    return rs, np.stack(c_draws, axis=1), assigned.reshape(n, k) / (n_chains * len(r_draws)), rhat, ess
-
-
 def _log_dirichlet(r: np.ndarray, a: np.ndarray) -> np.ndarray:
     """Return ln Dir(r | a) for r (K,) and parameters a (..., K)."""
     return gammaln(a.sum(axis=-1)) - gammaln(a).sum(axis=-1) + ((a - 1.0) * np.log(r)).sum(axis=-1)
@@ -411,7 +359,8 @@ def _gibbs_result(lme: np.ndarray, a0: np.ndarray, members: Sequence[Sequence[in
                          f"got {n_chains}, {n_draws}, {burn_in}, {max_draws}")
     n, k = lme.shape
     rng = np.random.default_rng(rng)
-    rs, counts, assigned, rhat, ess = _gibbs(lme, a0, members, rng, n_chains, n_draws, burn_in, max_draws)
+    rs, counts, assigned, rhat, ess = sample_frequencies(lme, a0, members, rng, n_chains, n_draws, burn_in,
+                                                        max_draws)
     draws = rs.reshape(-1, k)
     post_a = (a0 + counts).reshape(-1, k)
     alpha = post_a.mean(axis=0)
@@ -442,7 +391,30 @@ def rfx_gibbs(log_evidence: np.ndarray, alpha0: float | np.ndarray = 1.0, *,
     ``max_draws`` until every model frequency has R-hat < :data:`RHAT_MAX`
     and ESS >= :data:`ESS_MIN`. The BOR uses Chib's (1995) estimate of the
     log evidence of the random-effects model in place of the variational
-    bound. See :class:`GibbsBMSResult`.
+    bound.
+
+    Parameters
+    ----------
+    log_evidence : numpy.ndarray, shape (N, K)
+    alpha0 : float or numpy.ndarray, default 1
+    rng : numpy.random.Generator or int
+        The sampler's random stream (needed).
+    n_chains, n_draws, burn_in, max_draws : int, default 4, 500, 100, 16000
+
+    Returns
+    -------
+    GibbsBMSResult
+
+    Raises
+    ------
+    UsageError
+        For invalid evidence, prior or counts, or no ``rng``.
+
+    References
+    ----------
+    Penny, W. D., Stephan, K. E., Daunizeau, J., et al. (2010). Comparing
+    families of dynamic causal models. PLoS Comput. Biol. 6, e1000709.
+    Chib, S. (1995). Marginal likelihood from the Gibbs output. JASA 90, 1313-1321.
     """
     lme = _check_evidence(log_evidence)
     k = lme.shape[1]
@@ -479,29 +451,44 @@ def family_bms(log_evidence: np.ndarray, families: Mapping[str, Sequence[int | s
 
     The omnibus risk compares with the null that every model has its prior
     mean frequency (families equally frequent, models equally frequent within
-    a family); pxp = (1 - BOR) xp + BOR / F. ``options`` go to :func:`rfx_gibbs`
-    or :func:`rfx_bms`.
+    a family); pxp = (1 - BOR) xp + BOR / F.
+
+    Parameters
+    ----------
+    log_evidence : numpy.ndarray, shape (N, K)
+    families : mapping of str to sequence of int or str
+        Family name -> its models, as column indices or model ids.
+    model_ids : sequence of str, optional
+        The columns' model ids.
+    alpha0 : float, default 1
+        Each family's prior mass.
+    method, rng : str, numpy.random.Generator or int
+        "gibbs" (default; ``rng`` needed) or "variational".
+    **options
+        Passed to :func:`rfx_gibbs` or :func:`rfx_bms`.
+
+    Returns
+    -------
+    FamilyBMSResult
+
+    Raises
+    ------
+    UsageError
+        When the families do not partition the models, or for an unknown method.
+
+    References
+    ----------
+    Penny, W. D., Stephan, K. E., Daunizeau, J., et al. (2010). Comparing
+    families of dynamic causal models. PLoS Comput. Biol. 6, e1000709.
+    Rigoux, L., Stephan, K. E., Friston, K. J., & Daunizeau, J. (2014).
+    Bayesian model selection for group studies - revisited. NeuroImage 84,
+    971-985.
     """
     lme = _check_evidence(log_evidence)
     k = lme.shape[1]
     if method not in FAMILY_METHODS:
         raise UsageError(f"method must be one of {FAMILY_METHODS}; got {method!r}")
-    index = {m: i for i, m in enumerate(model_ids)} if model_ids is not None else {}
-    if model_ids is not None and len(index) != k:
-        raise UsageError(f"model_ids must name the {k} columns once each; got {list(model_ids)}")
-    members = []
-    for name, models in families.items():
-        try:
-            cols = tuple(index[m] if isinstance(m, str) else int(m) for m in models)
-        except KeyError as err:
-            raise UsageError(f"family {name!r} names an unknown model {err.args[0]!r}") from None
-        if not cols:
-            raise UsageError(f"family {name!r} has no models")
-        members.append(cols)
-    flat = sorted(c for cols in members for c in cols)
-    if flat != list(range(k)):
-        raise UsageError(f"families must partition the {k} models (each in exactly one family); "
-                         f"got {dict(zip(families, members))}")
+    members = _family_members(families, model_ids, k)
     _prior(alpha0, 1)
     a0 = np.empty(k)
     for cols in members:
@@ -526,3 +513,87 @@ def family_bms(log_evidence: np.ndarray, families: Mapping[str, Sequence[int | s
     return FamilyBMSResult(families=tuple(families), members=tuple(members), alpha=fam_alpha,
                            expected_freq=fam_alpha / fam_alpha.sum(), exceedance=xp,
                            protected_exceedance=pxp, bor=bor, draws=draws, models=res)
+
+
+def _family_members(families: Mapping[str, Sequence[int | str]], model_ids: Sequence[str] | None,
+                    k: int) -> list[tuple[int, ...]]:
+    """Return each family's model columns, checking that the families partition the k models."""
+    index = {m: i for i, m in enumerate(model_ids)} if model_ids is not None else {}
+    if model_ids is not None and len(index) != k:
+        raise UsageError(f"model_ids must name the {k} columns once each; got {list(model_ids)}")
+    members = []
+    for name, models in families.items():
+        try:
+            cols = tuple(index[m] if isinstance(m, str) else int(m) for m in models)
+        except KeyError as err:
+            raise UsageError(f"family {name!r} names an unknown model {err.args[0]!r}") from None
+        if not cols:
+            raise UsageError(f"family {name!r} has no models")
+        members.append(cols)
+    if sorted(c for cols in members for c in cols) != list(range(k)):
+        raise UsageError(f"families must partition the {k} models (each in exactly one family); "
+                         f"got {dict(zip(families, members))}")
+    return members
+
+
+def family_evidence(log_evidence: np.ndarray, members: Sequence[Sequence[int]]) -> np.ndarray:
+    """Return (N, F) family log evidence: ln of the mean of e^L over each family's models.
+
+    L_nf = ln sum_{k in f} e^{L_nk} - ln |f|, the evidence of family f under a
+    uniform prior over its members (Penny et al., 2010).
+
+    Parameters
+    ----------
+    log_evidence : numpy.ndarray, shape (N, K)
+        Log evidence in nats.
+    members : sequence of sequence of int
+        Each family's model columns.
+
+    Returns
+    -------
+    numpy.ndarray, shape (N, F)
+
+    Examples
+    --------
+    >>> np.exp(family_evidence(np.log([[1.0, 3.0, 2.0]]), [[0, 1], [2]])).round(6).tolist()
+    [[2.0, 2.0]]
+    """
+    lme = np.asarray(log_evidence, dtype=float)
+    return np.column_stack([logsumexp(lme[:, list(cols)], axis=1) - np.log(len(cols)) for cols in members])
+
+
+def groups_differ(log_evidence: np.ndarray, reference_evidence: np.ndarray) -> tuple[float, float]:
+    """Return (posterior probability that two groups' model frequencies differ, log Bayes factor in nats).
+
+    Under "differ" each group has its own frequencies, log p(y | differ) =
+    F(group) + F(reference); under "same" one set of frequencies generates
+    both, log p(y | same) = F(pooled); F is the free energy of
+    :func:`rfx_bms`. With equal prior odds, P(differ | y) =
+    1 / (1 + exp(F(pooled) - F(group) - F(reference))).
+
+    Parameters
+    ----------
+    log_evidence, reference_evidence : numpy.ndarray, shape (N_g, K) and (N_r, K)
+        The two groups' log evidence over the same K models.
+
+    Returns
+    -------
+    (float, float)
+
+    Raises
+    ------
+    UsageError
+        When the arrays are not (participants, models) with the same models.
+
+    References
+    ----------
+    Rigoux, L., Stephan, K. E., Friston, K. J., & Daunizeau, J. (2014).
+    Bayesian model selection for group studies - revisited. NeuroImage 84,
+    971-985.
+    """
+    a, b = np.asarray(log_evidence, float), np.asarray(reference_evidence, float)
+    if a.ndim != 2 or b.ndim != 2 or a.shape[1] != b.shape[1]:
+        raise UsageError(f"the two groups' log evidence must be (participants, models) with the same "
+                         f"models; got shapes {a.shape} and {b.shape}")
+    log_bf = rfx_bms(a).free_energy + rfx_bms(b).free_energy - rfx_bms(np.vstack([a, b])).free_energy
+    return float(expit(log_bf)), float(log_bf)

@@ -1,253 +1,389 @@
 """The whole job in one call: validation, fits and comparisons, reaction times, groups, events, report.
 
-:func:`analyze` runs the steps in order and returns every table as a
-DataFrame; with ``out`` it writes one plainly named subfolder per step
-(``validation/``, ``fit/``, ``rt/``, ``groups/``, ``events/``, ``recovery/``)
-and ``report.html`` with its figures, atomically (:mod:`foretell.outputs`).
-The report reads its numbers from the very tables written beside it.
+:func:`analyze` runs the steps in order, each on the results of those before
+it, and returns an :class:`AnalysisResult` whose files are the steps' own
+under one plainly named subfolder each, plus ``report.html`` and its figures;
+with ``out`` it writes them through :func:`foretell.outputs.write`.
 """
 
 from __future__ import annotations
 
+import contextlib
 import sys
-import tempfile
 import time
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
+from typing import TYPE_CHECKING, ClassVar
 
 import pandas as pd
 from tqdm import tqdm
 
-from ..errors import UsageError
-from ..logs import ValidatedLog, load_log, log_summary, unscorable, validate_log
+from ..folders import STEP_FOLDERS, ResultFolder, as_recovery, fingerprints
+from ..inputs import as_log, as_task
+from ..logs import ValidatedLog, log_summary, unscorable
 from ..models import default_warmup
-from ..outputs import netcdf_bytes, write_outputs
-from ..tasks import Task, load_task
+from ..results import Result, prefixed
+from ..validation import check_count, check_n_jobs, check_option, check_seed
 
-STEPS = ("fit", "rt", "groups", "events", "report")
+if TYPE_CHECKING:
+    from ..report.build import Report
+    from ..tasks import Task
+
+STEPS = ("fit", "rt", "groups", "events", "eeg", "report")
 """The steps that can be skipped (validation always runs: every other step needs a checked log)."""
 DEMO_DRAWS = 300
 """Posterior draws (and tuning steps) per chain in demo mode: its Bayesian comparisons are provisional."""
 DEMO_CHAINS = 2
+"""Markov chains per model in demo mode."""
+TRIALS = ("best", "all", "none")
+"""The choices of rows for fit/trials.csv."""
 
 
-@dataclass(frozen=True, eq=False)
-class AnalysisResult:
-    """Every table of a study's whole analysis, by step, and the report.
+@dataclass(frozen=True, eq=False, kw_only=True)
+class ValidationResult(Result):
+    """What validating the log found: a summary per participant, who has nothing to fit, the warnings.
 
-    ``tables`` maps output paths without extension (``fit/fits``,
-    ``rt/rt_compare``, ``groups/curves``, ...) to DataFrames; ``texts`` maps
-    file names to text (summaries, warnings, the report); ``files`` holds
-    other files as bytes (figures, posteriors, events); ``fit``, ``rt``,
-    ``groups``, ``events`` are the steps' own result objects (None when
-    skipped or not applicable); ``notes`` are lines for the console;
-    ``settings`` the options used.
+    Attributes
+    ----------
+    summary : pandas.DataFrame
+        :func:`foretell.logs.log_summary` (one row per participant, then everyone).
+    unscorable : pandas.DataFrame or None
+        :func:`foretell.logs.unscorable` in guess designs (participants with
+        nothing to fit, and why); None in reaction designs.
+    warnings : tuple of str
+        What reading and screening the log noticed.
     """
 
-    tables: Mapping[str, pd.DataFrame]
-    texts: Mapping[str, str]
-    files: Mapping[str, bytes]
-    fit: object = None
-    rt: object = None
-    groups: object = None
-    events: object = None
-    notes: tuple[str, ...] = ()
-    settings: Mapping[str, object] = field(default_factory=dict)
+    step: ClassVar[str] = "validation"
+    summary: pd.DataFrame
+    unscorable: pd.DataFrame | None = None
+    warnings: tuple[str, ...] = ()
+
+    def tables(self) -> dict[str, pd.DataFrame]:
+        """Return ``summary`` and, in guess designs, ``unscorable``."""
+        out = {"summary": self.summary}
+        if self.unscorable is not None:
+            out["unscorable"] = self.unscorable
+        return out
+
+    def texts(self) -> dict[str, str]:
+        """Return ``warnings.txt``: one warning per line."""
+        return {"warnings.txt": "".join(f"{w}\n" for w in self.warnings)}
+
+
+@dataclass(frozen=True, eq=False, kw_only=True)
+class AnalysisResult(Result):
+    """The whole analysis of a study: every step's result, and the report built from them.
+
+    Attributes
+    ----------
+    steps : mapping of str to Result
+        The results by output subfolder, in the order run: ``validation``,
+        ``fit``, ``rt``, ``groups``, ``events``, ``recovery`` (those that ran;
+        ``result.steps["rt"]``, ...).
+
+    Notes
+    -----
+    Its files are the steps' own under their subfolder (``fit/fits.csv``,
+    ``groups/figures/curve_accuracy.png``, ...), plus ``report.html`` and
+    the figures only the report shows (``figures/winners.png``, ...). Each
+    figure is drawn once: the report embeds the very PNG that is written.
+    """
+
+    step: ClassVar[str] = "analyze"
+    steps: Mapping[str, Result] = field(default_factory=dict)
+
+    @property
+    def fit(self) -> Result | None:
+        """Return the fits and comparisons (:class:`foretell.steps.guesses.FitResult`), if they ran."""
+        return self.steps.get("fit")
+
+    @cached_property
+    def _step_tables(self) -> dict[str, dict[str, pd.DataFrame]]:
+        return {folder: result.tables() for folder, result in self.steps.items()}
+
+    def step_tables(self, folder: str) -> dict[str, pd.DataFrame]:
+        """Return the tables of the step in ``folder`` by file stem (computed once)."""
+        return self._step_tables[folder]
+
+    @cached_property
+    def figure_pngs(self) -> dict[str, bytes]:
+        """Return every step's figures as PNG by output path (``groups/figures/<name>.png``), each drawn once."""
+        from ..plots import figure_png
+
+        return {f"{folder}/figures/{name}.png": figure_png(draw())
+                for folder, result in self.steps.items() for name, draw in result.figure_makers().items()}
+
+    @cached_property
+    def report(self) -> "Report | None":
+        """Return the report built from these results (None when the report step was skipped)."""
+        from ..report.build import build_report
+
+        if "report" in self.settings.get("skip", ()):
+            return None
+        return build_report(self, provisional=bool(self.settings.get("provisional", False)))
 
     @property
     def report_html(self) -> str | None:
         """Return the report's HTML (None when the report step was skipped)."""
-        return self.texts.get("report.html")
+        return None if self.report is None else self.report.html
+
+    def tables(self) -> dict[str, pd.DataFrame]:
+        """Return every step's tables under its subfolder (``fit/fits``, ``rt/rt_compare``, ...)."""
+        out: dict[str, pd.DataFrame] = {}
+        for folder, tables in self._step_tables.items():
+            out |= prefixed(folder, tables)
+        return out
+
+    def texts(self) -> dict[str, str]:
+        """Return every step's texts under its subfolder, and ``report.html``."""
+        out: dict[str, str] = {}
+        for folder, result in self.steps.items():
+            out |= prefixed(folder, result.texts())
+        if self.report is not None:
+            out["report.html"] = self.report.html
+        return out
+
+    def blobs(self) -> dict[str, bytes]:
+        """Return every step's other files and figures under its subfolder, and the report's own figures."""
+        out: dict[str, bytes] = {}
+        for folder, result in self.steps.items():
+            out |= prefixed(folder, result.blobs())
+        out |= self.figure_pngs
+        if self.report is not None:
+            out |= self.report.figures
+        return out
 
 
-def analyze(log: ValidatedLog | pd.DataFrame | str | Path, task: Task | str | Path, out: str | Path | None = None,
-            *, models: Sequence[str] | None = None, rt_models: Sequence[str] | None = None,
-            free: Iterable[str] = (), skip: Iterable[str] = (), recovery: str | Path | None = None,
-            seed: int = 0, n_jobs: int = 1, bayes: bool = True, draws: int = 1000, chains: int = 4,
-            tune: int = 1000, provisional: bool = False, force: bool = False, inputs: Sequence[str | Path] = (),
-            manifest: Mapping[str, object] | None = None, progress: bool | None = None,
-            trials: str = "best", refits: int | None = None) -> AnalysisResult:
+@dataclass(frozen=True)
+class _Run:
+    """The inputs and checked options that every step of one analysis reads."""
+
+    log: ValidatedLog
+    task: "Task"
+    models: list[str] | None
+    rt_models: list[str] | None
+    free: tuple[str, ...]
+    skip: tuple[str, ...]
+    seed: int
+    n_jobs: int
+    bayes: bool
+    draws: int
+    chains: int
+    tune: int
+    refits: int | None
+    trials: str
+    provisional: bool
+    recovery: object
+    epochs: object = None
+    locked: str | None = None
+
+    def settings(self, done: Mapping[str, Result]) -> dict[str, object]:
+        """Return the analysis's full option set, with each step's own under ``steps``."""
+        recovery = self.recovery.path if isinstance(self.recovery, ResultFolder) else self.recovery
+        described = None if recovery is None else "in memory" if isinstance(recovery, Result) else str(recovery)
+        return {"task": self.task.name, "models": self.models, "rt_models": self.rt_models,
+                "free": list(self.free), "skip": list(self.skip), "seed": self.seed, "n_jobs": self.n_jobs,
+                "bayes": self.bayes, "draws": self.draws, "chains": self.chains, "tune": self.tune,
+                "refits": self.refits, "trials": self.trials, "provisional": self.provisional,
+                "recovery": described,
+                "steps": {folder: dict(result.settings) for folder, result in done.items()}}
+
+
+def _validation(run: _Run, done: Mapping[str, Result]) -> Result:
+    log, task = run.log, run.task
+    left = unscorable(log, default_warmup(task)) if task.response == "guess" else None
+    return ValidationResult(task=task, settings={"source": log.source, "rt_unit": log.rt_unit},
+                            summary=log_summary(log), unscorable=left, warnings=tuple(log.warnings))
+
+
+def _fit(run: _Run, done: Mapping[str, Result]) -> Result | str:
+    if run.task.response != "guess":
+        return f"fit: not applicable to a {run.task.response} design"
+    from .guesses import fit
+
+    return fit(run.log, run.task, models=run.models, free=run.free, seed=run.seed, n_jobs=run.n_jobs,
+               trials=run.trials, progress=False)
+
+
+def _rt(run: _Run, done: Mapping[str, Result]) -> Result | str:
+    if not bool(run.log.frame["rt_ok"].any()):
+        return "reaction times: none usable in this log; step skipped"
+    from .measures import analyze_rt
+
+    fitted = done.get("fit")
+    models = run.rt_models or (fitted.model_ids if fitted is not None else run.models)
+    return analyze_rt(run.log, run.task, models=models, fit=fitted, bayes=run.bayes, draws=run.draws,
+                      chains=run.chains, tune=run.tune, seed=run.seed, n_jobs=run.n_jobs, refits=run.refits,
+                      progress=False)
+
+
+def _groups(run: _Run, done: Mapping[str, Result]) -> Result | str:
+    frame = run.log.frame
+    if (frame["group"].nunique() if "group" in frame.columns else 0) < 2:
+        return "groups: the log has fewer than two groups; no group comparison"
+    from .groups import compare_groups
+
+    return compare_groups(run.log, run.task, fit=done.get("fit"), draws=run.draws, chains=run.chains,
+                          tune=run.tune, seed=run.seed, bayes=run.bayes, n_jobs=run.n_jobs, progress=False)
+
+
+def _events(run: _Run, done: Mapping[str, Result]) -> Result:
+    from .events import export_events
+
+    return export_events(run.log, run.task, fit=done.get("fit"), models=run.models,
+                         n_jobs=run.n_jobs, progress=False)
+
+
+def _eeg(run: _Run, done: Mapping[str, Result]) -> Result | str:
+    if run.epochs is None:
+        return "eeg: no epochs given; step skipped"
+    from .eeg import analyze_eeg
+
+    return analyze_eeg(run.log, run.task, epochs=run.epochs, fit=done.get("fit"), models=run.models,
+                       locked=run.locked, seed=run.seed, n_jobs=run.n_jobs, progress=False)
+
+
+def _recovery(run: _Run, done: Mapping[str, Result]) -> Result:
+    return as_recovery(run.recovery, run.task)
+
+
+RUNNERS: tuple[tuple[str, Callable[[_Run, Mapping[str, Result]], Result | str]], ...] = (
+    ("validation", _validation), ("fit", _fit), ("rt", _rt), ("groups", _groups), ("events", _events),
+    ("eeg", _eeg), (STEP_FOLDERS["recover"], _recovery))
+"""Each step's output folder and its runner: a function of the run and the results before it."""
+
+
+def analyze(log: object, task: object, *, out: str | Path | None = None, models: Sequence[str] | None = None,
+            rt_models: Sequence[str] | None = None, free: Iterable[str] = (), skip: Iterable[str] = (),
+            recovery: object = None, seed: object = 0, n_jobs: int = 1, progress: bool | None = None,
+            bayes: bool = True, draws: int = 1000, chains: int = 4, tune: int = 1000, refits: int | None = None,
+            trials: str = "best", epochs: object = None, locked: str | None = None, force: bool = False, inputs: Sequence[str | Path] = (),
+            manifest: Mapping[str, object] | None = None, provisional: bool = False) -> AnalysisResult:
     """Return (and with ``out``, write) the whole analysis of a study.
 
-    Steps, each with a progress bar: validation (summary, warnings,
-    participants with nothing to fit), fit and comparison
-    (:func:`foretell.fit` with ``models`` and ``free``), reaction times when
-    the log has usable ones (:func:`foretell.steps.measures.analyse_rt` with
-    ``rt_models``, default the fitted models, and the fitted learner
-    parameters), group curves and contrasts when the log has two or more
-    groups (:func:`foretell.steps.groups.compare_groups`), BIDS events
-    (:func:`foretell.steps.events.events_tables`) and the report
-    (:func:`foretell.report.build.build_report`). ``skip`` names steps of
-    :data:`STEPS` to leave out. ``recovery`` is a ``foretell recover`` output
-    folder whose tables are copied under ``recovery/`` and shown in the
-    report. ``bayes`` runs the hierarchical Bayesian models of the RT and
-    group steps (without it: summed BIC and permutation tests only);
-    ``draws``, ``chains``, ``tune`` go to those models, ``refits`` (exact
-    leave-one-out refits per RT model) to :func:`foretell.steps.measures.analyse_rt`;
-    ``provisional`` marks their comparisons provisional in the report (demo
-    mode). ``inputs`` are files whose SHA-256 the manifest records and that
-    ``out`` may not hold.
+    Parameters
+    ----------
+    log : str, pathlib.Path, pandas.DataFrame or ValidatedLog
+        The response log (:func:`foretell.inputs.as_log`).
+    task : Task, str or pathlib.Path
+        The task (:func:`foretell.inputs.as_task`).
+    out : str or pathlib.Path, optional
+        Write the result there (:func:`foretell.outputs.write`): one
+        subfolder per step and ``report.html``. The folder is checked and
+        held before any work.
+    models : sequence of str, optional
+        Model ids of the fits (default: the task's set); also the events' models.
+    rt_models : sequence of str, optional
+        Model ids of the RT models (default: the fitted models).
+    free : iterable of str
+        Extra free learner parameters of the fits (``leak``, ``alpha``).
+    skip : iterable of str
+        Steps of :data:`STEPS` to leave out.
+    recovery : RecoveryResult, ResultFolder, str or pathlib.Path, optional
+        A design check of this task (:func:`foretell.folders.as_recovery`),
+        shown under ``recovery/`` and in the report.
+    seed : int or numpy.random.Generator, default 0
+        Seed of every random step (:func:`foretell.validation.check_seed`).
+    n_jobs : int, default 1
+        Parallel jobs of every step (-1: all cores).
+    progress : bool, optional
+        Show a bar per step on stderr (default: when stderr is a terminal).
+    bayes : bool, default True
+        Fit the hierarchical Bayesian models of the RT and group steps
+        (without: summed BIC and permutation tests only).
+    draws, chains, tune : int
+        Posterior draws per chain, chains, tuning steps of those models.
+    refits : int, optional
+        Exact leave-one-out refits per RT model (default of :func:`foretell.analyze_rt`).
+    trials : {"best", "all", "none"}
+        Rows of ``fit/trials.csv``.
+    epochs : str or pathlib.Path, optional
+        The participants' EEG epochs (:func:`foretell.analyze_eeg`): a pattern
+        of ``*-epo.fif`` files or a BIDS derivatives folder; without it the
+        eeg step is skipped.
+    locked : {"guess", "reveal", "stimulus"}, optional
+        The event the epochs are locked to (default: the trial's first event).
+    force : bool, default False
+        Replace a folder that foretell wrote before.
+    inputs : sequence of paths
+        Files the run read: the manifest of the caller records them, and
+        ``out`` may not be, hold or lie in any of them.
+    manifest : mapping, optional
+        Provenance merged into the manifest (:func:`foretell.outputs.provenance`).
+    provisional : bool, default False
+        Mark the Bayesian comparisons provisional in the report (demo mode).
+
+    Returns
+    -------
+    AnalysisResult
+        Every step's result; steps that do not apply (no RTs, fewer than two
+        groups, a reaction design for the fits) are absent and ``notes`` says why.
+
+    Raises
+    ------
+    UsageError
+        An unknown step in ``skip``, or a bad option.
+    OutputError
+        When ``out`` may not be written.
     """
-    skip = set(skip)
-    unknown = skip - set(STEPS)
-    if unknown:
-        raise UsageError(f"cannot skip {', '.join(sorted(unknown))}: the steps are {', '.join(STEPS)}")
-    if not isinstance(task, Task):
-        task = load_task(task)
-    if isinstance(log, pd.DataFrame):
-        log = validate_log(log, task)
-    elif not isinstance(log, ValidatedLog):
-        log = load_log(log, task)
+    task = as_task(task)
+    log = as_log(log, task)
+    run = _Run(log, task, models=list(models) if models else None, rt_models=list(rt_models) if rt_models else None,
+               free=tuple(free), skip=tuple(sorted({str(check_option("skip", s, STEPS)) for s in skip})),
+               seed=check_seed(seed), n_jobs=check_n_jobs(n_jobs), bayes=bool(bayes),
+               draws=check_count("draws", draws), chains=check_count("chains", chains),
+               tune=check_count("tune", tune, 0), refits=refits, trials=str(check_option("trials", trials, TRIALS)),
+               provisional=bool(provisional), recovery=recovery, epochs=epochs, locked=locked)
+    folders = ([recovery.path if isinstance(recovery, ResultFolder) else recovery]
+               if isinstance(recovery, (str, Path, ResultFolder)) else [])
+    held = contextlib.nullcontext()
     if out is not None:
-        from ..outputs import check_output_dir
+        from ..outputs import reserve
 
-        check_output_dir(out, inputs=inputs, force=force)
-    recovery_tables = _read_recovery(Path(recovery)) if recovery is not None else {}
-    started = time.perf_counter()
-    timings: dict[str, float] = {}
-    tables: dict[str, pd.DataFrame] = {}
-    texts: dict[str, str] = {}
-    files: dict[str, bytes] = {}
-    notes: list[str] = []
-    show = sys.stderr.isatty() if progress is None else bool(progress)
-    has_rt = bool(log.frame["rt_ok"].any())
-    n_groups = log.frame["group"].nunique() if "group" in log.frame.columns else 0
-    planned = ["validation"] + [s for s in STEPS if s not in skip]
-    results: dict[str, object] = {}
-    with tqdm(total=len(planned), desc="analysis", unit="step", disable=not show, file=sys.stderr) as bar:
-        for step in planned:
-            bar.set_postfix_str(step)
-            t0 = time.perf_counter()
-            if step == "validation":
-                tables["validation/summary"] = log_summary(log)
-                left = unscorable(log, default_warmup(task)) if task.response == "guess" else None
-                if left is not None:
-                    tables["validation/unscorable"] = left
-                texts["validation/warnings.txt"] = "".join(f"{w}\n" for w in log.warnings)
-            elif step == "fit":
-                if task.response != "guess":
-                    notes.append(f"fit: not applicable to a {task.response} design")
-                else:
-                    from .guesses import fit
+        held = reserve(out, inputs=[*inputs, *folders], force=force)
+    with held:
+        result, timings = _run_steps(run, progress)
+        if out is not None:
+            from ..outputs import write
 
-                    result = fit(log, task, models, free=free, seed=seed, n_jobs=n_jobs, progress=False)
-                    results["fit"] = result
-                    tables |= {f"fit/{k}": v for k, v in result.tables(trials=trials).items()}
-                    texts["fit/summary.txt"] = result.summary + "\n"
-                    notes += list(result.notes)
-            elif step == "rt":
-                if not has_rt:
-                    notes.append("reaction times: none usable in this log; step skipped")
-                else:
-                    from .measures import analyse_rt
-
-                    fitted = results.get("fit")
-                    result = analyse_rt(log, task, rt_models or _fitted_models(fitted, models),
-                                        fits=fitted.fits if fitted is not None else None, bayes=bayes,
-                                        draws=draws, chains=chains, tune=tune, seed=seed, n_jobs=n_jobs,
-                                        refits=refits, progress=False)
-                    results["rt"] = result
-                    tables |= {f"rt/{k}": v for k, v in result.tables().items()}
-                    texts["rt/summary.txt"] = "".join(f"{n}\n" for n in result.notes)
-                    files |= {f"rt/posterior_{m}.nc": netcdf_bytes(i) for m, i in result.posteriors.items()}
-            elif step == "groups":
-                if n_groups < 2:
-                    notes.append("groups: the log has fewer than two groups; no group comparison")
-                else:
-                    from .groups import compare_groups
-
-                    result = compare_groups(log, task, results.get("fit"), draws=draws, chains=chains,
-                                            tune=tune, seed=seed, bayes=bayes, progress=False,
-                                            cores=max(1, min(chains, n_jobs if n_jobs > 0 else 2)))
-                    results["groups"] = result
-                    tables |= {f"groups/{k}": v for k, v in result.tables().items()}
-                    from ..plots.common import figure_png
-
-                    files |= {f"groups/figures/{n}.png": figure_png(f) for n, f in result.figures.items()}
-                    notes += list(result.notes)
-            elif step == "events":
-                from .events import events_tables, sidecar_json, to_tsv
-
-                fitted = results.get("fit")
-                fits = fitted.fits if fitted is not None else None
-                result = events_tables(log, task, event_models(fits, task, models), fits=fits)
-                results["events"] = result
-                files |= {f"events/{name}": to_tsv(frame) for name, frame in result.files.items()}
-                files |= {f"events/{name}": sidecar_json(d) for name, d in result.sidecars.items()}
-                tables["events/participants"] = result.labels
-                notes += list(result.warnings)
-            elif step == "report":
-                tables |= {f"recovery/{k}": v for k, v in recovery_tables.items() if k != "answer"}
-                if "answer" in recovery_tables:
-                    texts["recovery/answer.txt"] = recovery_tables["answer"]
-                html, figures = _report(tables, texts, {k: v for k, v in files.items()
-                                                        if k.startswith("events/")},
-                                        provisional=provisional,
-                                        settings={"task": task.name, "seed": seed, "draws": draws})
-                texts["report.html"] = html
-                files |= figures
-            timings[f"{step}_s"] = round(time.perf_counter() - t0, 3)
-            bar.update()
-    timings["total_s"] = round(time.perf_counter() - started, 3)
-    settings = {"task": task.name, "models": list(models) if models else None,
-                "rt_models": list(rt_models) if rt_models else None, "free": list(free),
-                "skip": sorted(skip), "seed": seed, "bayes": bayes, "draws": draws, "chains": chains, "tune": tune,
-                "provisional": provisional, "trials": trials}
-    result = AnalysisResult(tables, texts, files, results.get("fit"), results.get("rt"),
-                            results.get("groups"), results.get("events"), tuple(notes), settings)
-    if out is not None:
-        record = {**dict(manifest or {}), "settings": settings, "timings_s": timings}
-        write_outputs(out, tables, texts=texts, extra=files, manifest=record, inputs=inputs, force=force)
+            record = {**dict(manifest or {}), **fingerprints(task, log), "timings_s": timings}
+            write(out, result, inputs=[*inputs, *folders], force=force, manifest=record)
     return result
 
 
-def _fitted_models(fitted: object, models: Sequence[str] | None) -> list[str] | None:
-    """Return the models of the fit step (None: the task's default set)."""
-    if fitted is not None:
-        return list(fitted.settings["models"])
-    return list(models) if models else None
-
-
-def event_models(fits: pd.DataFrame | None, task: Task, models: Sequence[str] | None = None) -> list[str]:
-    """Return the models whose per-trial quantities go into the events files.
-
-    ``models``, else the fitted models (``fits``), else the task's default
-    set; without fits only models whose learner needs no fitted parameter
-    (no free leak): their per-trial quantities would need values nobody fitted.
-    """
-    from ..models import default_models, parse_model
-
-    if models:
-        return list(models)
-    if fits is not None:
-        return list(dict.fromkeys(fits["model"].astype(str)))
-    return [m for m in default_models(task) if "leak" not in parse_model(m, task).free]
-
-
-def _report(tables: Mapping[str, pd.DataFrame], texts: Mapping[str, str], files: Mapping[str, bytes], *,
-            provisional: bool, settings: Mapping[str, object]) -> tuple[str, dict[str, bytes]]:
-    """Return the report's HTML and figures, built from the tables as written (CSV round trip)."""
-    from ..report.build import build_report
-
-    with tempfile.TemporaryDirectory() as folder:
-        stage = Path(folder) / "stage"
-        write_outputs(stage, tables, texts={k: v for k, v in texts.items() if k.endswith(".txt")},
-                      extra=files, manifest={"settings": dict(settings), "provisional": provisional})
-        html, figures = build_report(stage, provisional=provisional)
-    return html, {f"figures/{Path(name).name}": data for name, data in figures.items()}
-
-
-def _read_recovery(folder: Path) -> dict[str, object]:
-    """Return the tables (and answer text) of a ``foretell recover`` output folder."""
-    from ..errors import InputError
-
-    names = ("confusion", "inversion", "params", "recovery_summary", "group_check")
-    missing = [n for n in names if not (folder / f"{n}.csv").is_file()]
-    if missing:
-        raise InputError(f"not a foretell recover output: {', '.join(f'{n}.csv' for n in missing)} "
-                         "missing", path=str(folder))
-    out: dict[str, object] = {n: pd.read_csv(folder / f"{n}.csv") for n in names}
-    if (folder / "answer.txt").is_file():
-        out["answer"] = (folder / "answer.txt").read_text(encoding="utf-8")
-    return out
+def _run_steps(run: _Run, progress: bool | None) -> tuple[AnalysisResult, dict[str, float]]:
+    """Return the analysis of ``run`` (each step on the results before it) and the seconds each step took."""
+    planned = [(folder, step) for folder, step in RUNNERS if folder not in run.skip
+               and (folder != STEP_FOLDERS["recover"] or run.recovery is not None)]
+    report = "report" not in run.skip
+    show = sys.stderr.isatty() if progress is None else bool(progress)
+    started = time.perf_counter()
+    timings: dict[str, float] = {}
+    done: dict[str, Result] = {}
+    notes: list[str] = []
+    with tqdm(total=len(planned) + report, desc="analysis", unit="step", disable=not show, file=sys.stderr) as bar:
+        for folder, step in planned:
+            bar.set_postfix_str(folder)
+            t0 = time.perf_counter()
+            outcome = step(run, done)
+            if isinstance(outcome, str):
+                notes.append(outcome)
+            else:
+                done[folder] = outcome
+                notes += list(outcome.notes)
+            timings[f"{folder}_s"] = round(time.perf_counter() - t0, 3)
+            bar.update()
+        fitted = done.get("fit")
+        result = AnalysisResult(task=run.task, specs=fitted.specs if fitted is not None else (),
+                                settings=run.settings(done), notes=tuple(notes), steps=done)
+        if report:  # the report and every figure, drawn once now: the result holds them
+            bar.set_postfix_str("report")
+            t0 = time.perf_counter()
+            _ = result.report
+            timings["report_s"] = round(time.perf_counter() - t0, 3)
+            bar.update()
+    timings["total_s"] = round(time.perf_counter() - started, 3)
+    return result, timings

@@ -1,0 +1,191 @@
+"""The rt step's comparisons: random-effects selection over participants and blocks, baseline included; the words."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from foretell.compare import selection, selection_blocks
+from foretell.labels import ALL
+from foretell.measure import BASELINE_MODEL, Measure
+from foretell.summaries import verdict
+from foretell.text import plural
+from foretell.validation import child_int
+
+CRITERION = "rfx_bms_bic"
+"""What the per-participant comparisons call on: random-effects BMS of -BIC/2 per participant."""
+COMPARE_COLUMNS = ("model", "rank", "criterion", "bic_sum", "d_bic_sum", "elpd", "se", "d_elpd", "dse", "p_loo",
+                   "weight", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk", "n_participants",
+                   "called", "evidence", "provisional")
+SELECTION_COLUMNS = ("group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor",
+                     "freq_concentration", "n_participants", "criterion", "method", "called", "note")
+_RFX = ("expected_freq", "exceedance", "protected_exceedance")
+
+
+def rfx_selection(fits: pd.DataFrame, seed: int, merge: Sequence[Sequence[str]] = ()) -> pd.DataFrame:
+    """Return random-effects model selection of the learners and the baseline, for everyone and per group.
+
+    :func:`foretell.compare.selection` on the per-participant log evidence
+    -BIC/2 of every model and the baseline (Stephan et al., 2009; protected
+    exceedance and omnibus risk, Rigoux et al., 2014); ``called`` marks the
+    model that :func:`foretell.summaries.verdict` names in each group (BOR
+    at most 0.5 and protected exceedance at least max(1/K + 0.1, 0.5)).
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        The fits table (participant, group, model, bic).
+    seed : int
+        The Gibbs check draws from ``child_rng(child_int(seed, "rt", "selection"), "model", group)``.
+    merge : sequence of sequence of str
+        Look-alike models (:func:`foretell.models.lookalikes`): identical
+        regressors, compared once (the others named in ``note``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns :data:`SELECTION_COLUMNS`.
+    """
+    usable = fits.dropna(subset=["bic"]) if "bic" in fits.columns else fits.iloc[0:0]
+    if usable.empty:
+        return pd.DataFrame(columns=SELECTION_COLUMNS)
+    table = selection(usable[["participant", "group", "model", "bic"]], criterion="bic", merge=merge,
+                      seed=child_int(seed, "rt", "selection"))
+    table["called"] = _called(table, ["group"])
+    return table[list(SELECTION_COLUMNS)]
+
+
+def _called(table: pd.DataFrame, keys: list[str]) -> pd.Series:
+    """Return, per row, whether its model is the leader :func:`foretell.summaries.verdict` names in its comparison."""
+    called = pd.Series(False, index=table.index)
+    for _, rows in table.groupby(keys, sort=False):
+        _, leader, _ = verdict(rows, "model")
+        called[rows.index] = rows["model"] == leader
+    return called
+
+
+def verdict_words(table: pd.DataFrame) -> list[str]:
+    """Return one line per group of the selection table: its verdict, and what it says of the learners."""
+    lines = []
+    for group, rows in table.groupby("group", sort=False):
+        status, leader, words = verdict(rows, "model")
+        n = int(rows["n_participants"].iloc[0])
+        if leader is None:
+            what = "no learner is called"
+        elif leader == BASELINE_MODEL:
+            what = f"no learner is called: the baseline {BASELINE_MODEL} leads"
+        else:
+            what = f"called: {leader} beats the baseline and the other learners"
+        lines.append(f"random-effects selection of per-participant BIC with the baseline (Stephan et al., 2009; "
+                     f"Rigoux et al., 2014), group {group} ({plural(n, 'participant')}): {words}; {what}")
+    return lines
+
+
+def compare_table(fits: pd.DataFrame, chosen: pd.DataFrame) -> pd.DataFrame:
+    """Return the model ranking of the per-participant path: by protected exceedance in group ``all``.
+
+    Summed BIC (``bic_sum``, ``d_bic_sum``: fixed effects, every
+    participant assumed to use the same model) stays beside it and makes no
+    call. ``called`` marks the model the random-effects selection calls for
+    everyone (:func:`rfx_selection`); ``evidence`` is its
+    :func:`foretell.summaries.verdict` status ("clear", "ahead") on its
+    row, "behind" on the others, "level" everywhere when nothing stands out.
+    """
+    usable = fits.dropna(subset=["bic"]) if "bic" in fits.columns else fits.iloc[0:0]
+    if usable.empty:
+        return pd.DataFrame(columns=COMPARE_COLUMNS)
+    bic = usable.groupby("model", sort=False)["bic"].sum()
+    rows = chosen[chosen["group"] == ALL].set_index("model") if len(chosen) else pd.DataFrame(index=bic.index)
+    status, leader, _ = verdict(chosen[chosen["group"] == ALL], "model") if len(chosen) else ("none", None, "")
+    table = pd.DataFrame({"model": bic.index, "bic_sum": bic.to_numpy(), "d_bic_sum": bic.to_numpy() - bic.min()})
+    for column in _RFX:
+        table[column] = rows[column].reindex(table["model"]).to_numpy() if column in rows else math.nan
+    table["omnibus_risk"] = rows["bor"].reindex(table["model"]).to_numpy() if "bor" in rows else math.nan
+    table["n_participants"] = usable.groupby("model", sort=False)["participant"].nunique().to_numpy()
+    table = table.sort_values(["protected_exceedance", "bic_sum"], ascending=[False, True], kind="stable",
+                              na_position="last").reset_index(drop=True)
+    table["rank"] = np.arange(1, len(table) + 1)
+    table["criterion"] = CRITERION
+    table["called"] = table["model"] == leader
+    table["evidence"] = np.where(table["called"], status, "behind" if leader is not None else "level")
+    for column in ("elpd", "se", "d_elpd", "dse", "p_loo", "weight"):
+        table[column] = math.nan
+    table["provisional"] = False
+    return table[list(COMPARE_COLUMNS)]
+
+
+def merge_elpd(rfx: pd.DataFrame, elpd: pd.DataFrame) -> pd.DataFrame:
+    """Return the compare table ranked and called by ELPD, the random-effects and summed-BIC columns beside it."""
+    if elpd.empty:
+        return rfx
+    beside = ["bic_sum", "d_bic_sum", *_RFX, "omnibus_risk", "n_participants"]
+    out = elpd.join(rfx.set_index("model")[beside], on="model")
+    out["criterion"] = "elpd_loo_participant_block"
+    return out[list(COMPARE_COLUMNS)].reset_index(drop=True)
+
+
+def rank_blocks(rows: pd.DataFrame, chosen: Measure, seed: int, merge: Sequence[Sequence[str]] = ()) -> pd.DataFrame:
+    """Return session x block x model: random-effects selection of each block's per-participant BIC.
+
+    ``score`` is the summed per-block BIC (kept for reference, no call);
+    ``rank`` orders the models by protected exceedance; ``called`` and
+    ``evidence`` as in :func:`compare_table`, block by block (the same rule
+    as the whole session).
+    """
+    slope = f"slope_median_{chosen.slope_name}"
+    columns = ["session", "block", "model", "score", "criterion", "rank", "n_participants", "n_trials", slope,
+               *_RFX, "omnibus_risk", "called", "evidence"]
+    if rows.empty:
+        return pd.DataFrame(columns=columns)
+    keys = ["session", "block", "model"]
+    out = rows.groupby(keys, sort=False).agg(
+        score=("bic", "sum"), n_participants=("participant", "nunique"), n_trials=("n_trials", "sum"),
+        **{slope: ("slope", "median")}).reset_index()
+    picked = selection_blocks(rows.rename(columns={"bic": "bic_block"}).assign(group=pd.NA), by_group=False,
+                              merge=merge, seed=child_int(seed, "rt", "blocks"))
+    picked["called"] = _called(picked, ["session", "block"])
+    out = out.merge(picked[["session", "block", "model", *_RFX, "bor", "called"]], on=keys, how="left")
+    out = out.rename(columns={"bor": "omnibus_risk"})
+    out["criterion"] = CRITERION
+    out["evidence"] = ""
+    for _, unit in out.groupby(["session", "block"], sort=False):
+        status, leader, _ = verdict(picked.loc[(picked["session"] == unit["session"].iloc[0])
+                                               & (picked["block"] == unit["block"].iloc[0])], "model")
+        out.loc[unit.index, "evidence"] = np.where(unit["model"] == leader, status,
+                                                   "behind" if leader is not None else "level")
+    out["called"] = out["called"].fillna(False).astype(bool)
+    out["order"] = out.groupby(["session", "block"], sort=False).ngroup()
+    out = out.sort_values(["order", "protected_exceedance", "score"], ascending=[True, False, True],
+                          kind="stable", na_position="last")
+    out["rank"] = out.groupby("order").cumcount() + 1
+    return out[columns].reset_index(drop=True)
+
+
+def block_words(blocks: pd.DataFrame) -> str | None:
+    """Return the line saying in how many blocks a learner is called, and which."""
+    if blocks.empty:
+        return None
+    units = blocks.groupby(["session", "block"], sort=False)
+    called = blocks[blocks["called"] & (blocks["model"] != BASELINE_MODEL)]
+    where = "; ".join(f"{m} in {plural(len(r), 'block')}" for m, r in called.groupby("model", sort=False))
+    return (f"block by block (random-effects selection of each block's BIC, the same rule): a learner is called "
+            f"in {called[['session', 'block']].drop_duplicates().shape[0]} of {plural(units.ngroups, 'block')}"
+            + (f" ({where})" if where else ""))
+
+
+def bic_words(fits: pd.DataFrame) -> list[str]:
+    """Return the line on summed BIC: which model is lowest and by how much (fixed effects; no call)."""
+    usable = fits.dropna(subset=["bic"]) if "bic" in fits.columns else fits.iloc[0:0]
+    if usable.empty:
+        return ["no participant had enough kept trials"]
+    total = usable.groupby("model", sort=False)["bic"].sum().sort_values(kind="stable")
+    lines = []
+    if usable.groupby("model", sort=False)["participant"].nunique().nunique() > 1:
+        lines.append("summed BIC: models were summed over different participants (too few kept trials for some)")
+    if len(total) > 1:
+        lines.append(f"summed BIC (fixed effects, shown for reference, no call): {total.index[0]} lowest, "
+                     f"{total.iloc[1] - total.iloc[0]:.1f} below {total.index[1]}")
+    return lines
