@@ -323,7 +323,10 @@ def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spe
         names = list(spec) if spec is not None else models
         result, used = None, ""
         if len(wide) and names:
-            rng = child_rng(seed, label, *labels.values())
+            # keyed by the participants compared, not the group's name: the same people (a single
+            # group and "all") get the same draws, so Monte Carlo error cannot give them two verdicts
+            unit = [v for k, v in labels.items() if k != "group"]
+            rng = child_rng(seed, label, *unit, *sorted(map(str, wide.index)))
             result, why = _posterior(wide.to_numpy(), models, spec, method, alpha0, rng)
             used = result.method if result is not None else ""
             note = _join(note, why)
@@ -372,7 +375,7 @@ def selection(fits: pd.DataFrame, *, criterion: str = "bic", by_group: bool = Tr
         The Dirichlet prior on frequencies (per family for families).
     seed : int or numpy.random.Generator, default 0
         The Gibbs sampler's seed: each comparison draws from
-        ``child_rng(seed, "model" or "family", group, session, block)``.
+        ``child_rng(seed, "model" or "family", session, block, *participants)``.
 
     Returns
     -------

@@ -296,13 +296,15 @@ def step_folder(source: str | Path | ResultFolder, step: str) -> ResultFolder:
     return folder
 
 
-def _check_task(recorded: object, task: "Task", where: str, redo: str) -> list[str]:
-    """Raise InputError when ``recorded`` is another task's fingerprint; return a note when none was recorded."""
+def _check_task(folder: ResultFolder, task: "Task", redo: str) -> list[str]:
+    """Raise InputError when ``folder`` was made on another task (naming it); return a note when it records none."""
+    recorded, where, named = folder.fingerprint("task_sha256"), str(folder.path), folder.settings.get("task")
     if recorded is None:
         return [f"{where} records no task fingerprint (written by an earlier foretell): its task could not "
                 "be checked"]
     if recorded != task_sha256(task):
-        raise InputError(f"made on another task, not {task.name!r}: {redo}", path=where)
+        other = f" ({named})" if isinstance(named, str) and named else ""
+        raise InputError(f"made on another task{other}, not {task.name!r}: {redo}", path=where)
     return []
 
 
@@ -359,8 +361,7 @@ def as_fit(fit: object, log: "ValidatedLog | None", task: "Task") -> "FitResult 
         raise UsageError(f"fit must be a FitResult or {FIT_FOLDER}, got {type(fit).__name__}")
     folder = step_folder(fit, "fit")
     where = str(folder.path)
-    notes = _check_task(folder.fingerprint("task_sha256"), task, where,
-                        "give the fits made on this task, or fit this log (foretell fit)")
+    notes = _check_task(folder, task, "give the fits made on this task, or fit this log (foretell fit)")
     result = _rebuild_fit(folder, task)
     result = replace(result, notes=result.notes + tuple(notes))
     if log is None:
@@ -494,8 +495,7 @@ def as_recovery(recovery: object, task: "Task") -> "RecoveryResult | None":
     if not isinstance(recovery, (str, Path, ResultFolder)):
         raise UsageError(f"recovery must be a RecoveryResult or {RECOVERY_FOLDER}, got {type(recovery).__name__}")
     folder = step_folder(recovery, "recover")
-    notes = _check_task(folder.fingerprint("task_sha256"), task, str(folder.path),
-                        f"run the design check on this task (foretell recover --task {task.name})")
+    notes = _check_task(folder, task, f"run the design check on this task (foretell recover --task {task.name})")
     tables = {name: folder.require(name, RECOVERY_FOLDER) for name in RECOVERY_TABLES}
     return RecoveryResult(task=task, settings=dict(folder.settings), notes=folder.notes + tuple(notes),
                           answer=(folder.text("answer.txt") or "").rstrip("\n"), **tables)

@@ -290,7 +290,7 @@ def _report_run(result, out: str | Path) -> None:
         print(result.fit.summary)
     if result.report is not None:
         say(f"report: {Path(out) / 'report.html'}")
-    say(f"results written to {out}/")
+    say(f"results written to {Path(out)}/")
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
