@@ -11,7 +11,6 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.stats import norm
 
 from foretell.errors import UsageError
 from foretell.hierarchical import sampling
@@ -20,8 +19,6 @@ from foretell.hierarchical.gate import Gate, diagnose
 from foretell.hierarchical.group_model import (GroupModelSpec, build_model, fit_group_model, model_data,
                                                participant_intercepts, summarise_group_model)
 from foretell.hierarchical.loo import RefitWrapper, exact_refits, exact_units, psis_loo
-from foretell.hierarchical.measure_model import (PooledUnits, UnitStats, gaussian_unit_loglik, leave_out,
-                                                 unit_statistics)
 from foretell.hierarchical.sampling import sample, sampling_cores
 
 with warnings.catch_warnings():
@@ -169,62 +166,6 @@ def test_parameterisation_follows_the_strength_of_the_data_and_can_be_set():
 
 
 # -- the measure model ---------------------------------------------------------------------------------
-def test_sufficient_statistics_give_the_trial_by_trial_gaussian_loglik():
-    rng = np.random.default_rng(7)
-    n = np.array([1, 2, 57, 200, 13])
-    start = np.r_[0, np.cumsum(n)[:-1]]
-    x = rng.gamma(2.0, 0.6, size=n.sum())
-    y = -0.7 + 0.3 * x + 0.25 * rng.standard_normal(n.sum())
-    stats = unit_statistics(y, x, start)
-    level = rng.normal(-0.7, 0.2, size=(3, len(n)))  # three parameter draws
-    slope = rng.normal(0.3, 0.2, size=(3, len(n)))
-    sigma = rng.uniform(0.1, 0.5, size=(3, len(n)))
-    got = gaussian_unit_loglik(level, slope, sigma, np.log(sigma), stats)
-    unit = np.repeat(np.arange(len(n)), n)
-    for d in range(3):  # scipy.stats reference (Virtanen et al., 2020): the Gaussian log-density, trial by trial
-        ref = np.bincount(unit, norm.logpdf(y, level[d, unit] + slope[d, unit] * x, sigma[d, unit]))
-        np.testing.assert_allclose(got[d], ref, rtol=0, atol=1e-9)
-
-
-def test_leaving_a_unit_out_equals_pooling_the_other_units():
-    rng = np.random.default_rng(11)
-    n = np.array([40, 25, 60, 30, 45])
-    participant = np.array([0, 0, 1, 1, 2])
-    order = np.array([0.0, 1.0, 0.0, 1.0, 0.0])
-    x_raw = rng.gamma(2.0, 0.6, size=n.sum())
-    y = -0.6 + 0.2 * x_raw + 0.2 * rng.standard_normal(n.sum())
-    unit = np.repeat(np.arange(len(n)), n)
-
-    def pooled_from(keep: np.ndarray) -> PooledUnits:  # as pool_units builds it: centred over kept trials
-        at = np.isin(unit, keep)
-        x = x_raw[at] - x_raw[at].mean()
-        t = order[unit[at]] - order[unit[at]].mean()
-        starts = np.r_[0, np.cumsum(n[keep])[:-1]]
-        return PooledUnits(unit_statistics(y[at], x, starts), t[starts], participant[keep], ("a", "b", "c"),
-                           np.zeros(3, int), ("all",), tuple(map(str, keep)), float(y[at].mean()))
-
-    full = pooled_from(np.arange(len(n)))
-    u = 2
-    without, every = leave_out(full, u)
-    rest = np.delete(np.arange(len(n)), u)
-    ref = pooled_from(rest)
-    assert without.y_mean == pytest.approx(ref.y_mean, rel=1e-12)
-    for name in UnitStats.__dataclass_fields__:
-        np.testing.assert_allclose(getattr(without.stats, name)[rest], getattr(ref.stats, name),
-                                   rtol=1e-9, atol=1e-12, err_msg=name)
-    np.testing.assert_allclose(without.trend[rest], ref.trend, atol=1e-12)
-    assert without.stats.n[u] == 0 and every.stats.n[u] == n[u]
-    # at any parameters, the left-out unit adds exactly nothing, and keeps its own likelihood
-    # in the shifted coordinates (scipy.stats reference (Virtanen et al., 2020), trial by trial)
-    level, slope, sigma = rng.normal(-0.6, 0.1, 5), rng.normal(0.2, 0.1, 5), rng.uniform(0.1, 0.4, 5)
-    ll = gaussian_unit_loglik(level, slope, sigma, np.log(sigma), without.stats)
-    assert ll[u] == 0.0
-    x_rest = x_raw[np.isin(unit, rest)].mean()
-    at = unit == u
-    direct = norm.logpdf(y[at], level[u] + slope[u] * (x_raw[at] - x_rest), sigma[u]).sum()
-    assert gaussian_unit_loglik(level, slope, sigma, np.log(sigma), every.stats)[u] == pytest.approx(direct)
-
-
 # -- exact leave-one-out where PSIS is unreliable --------------------------------------------------
 def _held_out(idata, n_units: int = 3):
     loo = psis_loo(idata)
