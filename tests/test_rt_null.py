@@ -83,7 +83,7 @@ def test_null_rts_keep_the_interval_level_and_call_no_learner(lantern, kind):
 @pytest.mark.slow
 @pytest.mark.parametrize("kind", ["practice", "drift", "white"])
 def test_null_rts_keep_the_interval_level_and_call_no_learner_in_many_studies(lantern, kind):
-    _null_check(lantern, kind, range(10, 16), 16, 5, 120)
+    _null_check(lantern, kind, range(10, 20), 16, 5, 120)
 
 
 def test_slopes_and_errors_match_statsmodels_on_the_same_design_and_lag(lantern):

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -181,6 +181,11 @@ class Measure:
     def block_intercepts(self) -> bool:
         """Return whether the baseline has an intercept per session x block."""
         return "blocks" in self.baseline
+
+    def part(self, rows: slice) -> Measure:
+        """Return the measure of some rows of the log only (whole participants), e.g. one batch of them."""
+        per_row = ("values", "reason", "block_order", "session_order", "nuisance", "block_nuisance", "practice")
+        return replace(self, **{name: getattr(self, name)[rows] for name in per_row})
 
     def outcome(self, rows: slice) -> np.ndarray:
         """Return the outcome (log value when :attr:`log_transform`) of some rows."""

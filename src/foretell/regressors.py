@@ -152,11 +152,10 @@ def regressors(log: ValidatedLog, task: Task, models: Sequence[str | ModelSpec] 
 
     Learners restart at each session and carry on across blocks. A model
     whose leak is free and given neither in ``fits`` nor in ``fixed`` gets,
-    per participant, the leak of ``leak_grid`` that maximises
-    ``score`` (``params_from`` "held_out");
-    :func:`foretell.steps.measures.analyze_rt` passes the held-out predictive
-    density of its model of the measure. Rows: participant by participant, model by model,
-    trials in log order.
+    per participant, the leak of ``leak_grid`` that maximises ``score``
+    (``params_from`` "held_out"); :func:`foretell.steps.measures.analyze_rt`
+    passes the held-out predictive density of its model of the measure.
+    Rows: participant by participant, model by model, trials in log order.
 
     Parameters
     ----------

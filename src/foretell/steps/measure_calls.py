@@ -54,24 +54,28 @@ def rfx_selection(fits: pd.DataFrame, seed: int, merge: Sequence[Sequence[str]] 
         return pd.DataFrame(columns=SELECTION_COLUMNS)
     table = selection(usable[["participant", "group", "model", "bic"]], criterion="bic", merge=merge,
                       seed=child_int(seed, "rt", "selection"))
-    table["called"] = _called(table, ["group"])
+    table["called"], _ = _graded(table, ["group"])
     return table[list(SELECTION_COLUMNS)]
 
 
-def _called(table: pd.DataFrame, keys: list[str]) -> pd.Series:
-    """Return, per row, whether its model is the leader :func:`foretell.summaries.verdict` names in its comparison."""
+def _graded(table: pd.DataFrame, keys: list[str]) -> tuple[pd.Series, pd.Series]:
+    """Return per row: whether its model is the leader :func:`foretell.summaries.verdict` names in its
+    comparison, and the evidence word (the verdict's status on the leader's row, "behind" on the others,
+    "level" everywhere when nothing stands out)."""
     called = pd.Series(False, index=table.index)
+    evidence = pd.Series("", index=table.index, dtype=object)
     for _, rows in table.groupby(keys, sort=False):
-        _, leader, _ = verdict(rows, "model")
+        status, leader, _ = verdict(rows, "model")
         called[rows.index] = rows["model"] == leader
-    return called
+        evidence[rows.index] = np.where(rows["model"] == leader, status, "behind" if leader is not None else "level")
+    return called, evidence
 
 
 def verdict_words(table: pd.DataFrame) -> list[str]:
     """Return one line per group of the selection table: its verdict, and what it says of the learners."""
     lines = []
     for group, rows in table.groupby("group", sort=False):
-        status, leader, words = verdict(rows, "model")
+        _, leader, words = verdict(rows, "model")
         n = int(rows["n_participants"].iloc[0])
         if leader is None:
             what = "no learner is called"
@@ -98,19 +102,18 @@ def compare_table(fits: pd.DataFrame, chosen: pd.DataFrame) -> pd.DataFrame:
     if usable.empty:
         return pd.DataFrame(columns=COMPARE_COLUMNS)
     bic = usable.groupby("model", sort=False)["bic"].sum()
-    rows = chosen[chosen["group"] == ALL].set_index("model") if len(chosen) else pd.DataFrame(index=bic.index)
-    status, leader, _ = verdict(chosen[chosen["group"] == ALL], "model") if len(chosen) else ("none", None, "")
+    rows = chosen[chosen["group"] == ALL]
+    called, evidence = _graded(rows, ["group"])
+    rows = rows.assign(called=called, evidence=evidence, omnibus_risk=rows["bor"]).set_index("model")
     table = pd.DataFrame({"model": bic.index, "bic_sum": bic.to_numpy(), "d_bic_sum": bic.to_numpy() - bic.min()})
-    for column in _RFX:
-        table[column] = rows[column].reindex(table["model"]).to_numpy() if column in rows else math.nan
-    table["omnibus_risk"] = rows["bor"].reindex(table["model"]).to_numpy() if "bor" in rows else math.nan
+    for column in (*_RFX, "omnibus_risk", "called", "evidence"):
+        table[column] = rows[column].reindex(table["model"]).to_numpy()
     table["n_participants"] = usable.groupby("model", sort=False)["participant"].nunique().to_numpy()
     table = table.sort_values(["protected_exceedance", "bic_sum"], ascending=[False, True], kind="stable",
                               na_position="last").reset_index(drop=True)
     table["rank"] = np.arange(1, len(table) + 1)
     table["criterion"] = CRITERION
-    table["called"] = table["model"] == leader
-    table["evidence"] = np.where(table["called"], status, "behind" if leader is not None else "level")
+    table["called"] = table["called"].fillna(False).astype(bool)
     for column in ("elpd", "se", "d_elpd", "dse", "p_loo", "weight"):
         table[column] = math.nan
     table["provisional"] = False
@@ -133,7 +136,23 @@ def rank_blocks(rows: pd.DataFrame, chosen: Measure, seed: int, merge: Sequence[
     ``score`` is the summed per-block BIC (kept for reference, no call);
     ``rank`` orders the models by protected exceedance; ``called`` and
     ``evidence`` as in :func:`compare_table`, block by block (the same rule
-    as the whole session).
+    as the whole session). The variational scheme alone (Stephan et al.,
+    2009): the Gibbs check of the whole-session call would cost a sampler
+    run per block.
+
+    Parameters
+    ----------
+    rows : pandas.DataFrame
+        participant, session, block, model, n_trials, bic, slope
+        (:func:`foretell.steps.measure_fits.participant_blocks`).
+    chosen : Measure
+    seed : int
+    merge : sequence of sequence of str
+        Look-alike models (:func:`rfx_selection`).
+
+    Returns
+    -------
+    pandas.DataFrame
     """
     slope = f"slope_median_{chosen.slope_name}"
     columns = ["session", "block", "model", "score", "criterion", "rank", "n_participants", "n_trials", slope,
@@ -145,17 +164,11 @@ def rank_blocks(rows: pd.DataFrame, chosen: Measure, seed: int, merge: Sequence[
         score=("bic", "sum"), n_participants=("participant", "nunique"), n_trials=("n_trials", "sum"),
         **{slope: ("slope", "median")}).reset_index()
     picked = selection_blocks(rows.rename(columns={"bic": "bic_block"}).assign(group=pd.NA), by_group=False,
-                              merge=merge, seed=child_int(seed, "rt", "blocks"))
-    picked["called"] = _called(picked, ["session", "block"])
-    out = out.merge(picked[["session", "block", "model", *_RFX, "bor", "called"]], on=keys, how="left")
+                              merge=merge, method="variational", seed=child_int(seed, "rt", "blocks"))
+    picked["called"], picked["evidence"] = _graded(picked, ["session", "block"])
+    out = out.merge(picked[["session", "block", "model", *_RFX, "bor", "called", "evidence"]], on=keys, how="left")
     out = out.rename(columns={"bor": "omnibus_risk"})
     out["criterion"] = CRITERION
-    out["evidence"] = ""
-    for _, unit in out.groupby(["session", "block"], sort=False):
-        status, leader, _ = verdict(picked.loc[(picked["session"] == unit["session"].iloc[0])
-                                               & (picked["block"] == unit["block"].iloc[0])], "model")
-        out.loc[unit.index, "evidence"] = np.where(unit["model"] == leader, status,
-                                                   "behind" if leader is not None else "level")
     out["called"] = out["called"].fillna(False).astype(bool)
     out["order"] = out.groupby(["session", "block"], sort=False).ngroup()
     out = out.sort_values(["order", "protected_exceedance", "score"], ascending=[True, False, True],
@@ -171,7 +184,8 @@ def block_words(blocks: pd.DataFrame) -> str | None:
     units = blocks.groupby(["session", "block"], sort=False)
     called = blocks[blocks["called"] & (blocks["model"] != BASELINE_MODEL)]
     where = "; ".join(f"{m} in {plural(len(r), 'block')}" for m, r in called.groupby("model", sort=False))
-    return (f"block by block (random-effects selection of each block's BIC, the same rule): a learner is called "
+    return (f"block by block (variational random-effects selection of each block's BIC, the same rule): a "
+            f"learner is called "
             f"in {called[['session', 'block']].drop_duplicates().shape[0]} of {plural(units.ngroups, 'block')}"
             + (f" ({where})" if where else ""))
 

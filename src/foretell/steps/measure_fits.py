@@ -180,6 +180,25 @@ def participant_fits(chosen: Measure, part: pd.DataFrame, rows: slice, cols: Seq
     is ahead, "baseline-better" when not. ``block_trend`` is the
     least-squares line through the block intercepts (change per block).
     Hick (1952) and Hyman (1953): RT grows with the information of the choice.
+
+    Parameters
+    ----------
+    chosen : Measure
+    part : pandas.DataFrame
+        The participant's rows of the log.
+    rows : slice
+        Their position in the log.
+    cols : sequence of mapping
+        Per model, the regressor arrays (:meth:`Measure.model_columns`).
+    specs : sequence of ModelSpec
+    info : sequence of mapping
+        Per model, its learner values and where they came from.
+    intervals : mapping of str to (float, int)
+        Model -> (bootstrap SE, block length) of a leak chosen on the measure (:func:`honest_leak`).
+
+    Returns
+    -------
+    list of dict
     """
     d = chosen.design(rows, cols)
     n, p, p0 = len(d.y), d.learners.shape[2], d.baseline.shape[1]
@@ -243,11 +262,23 @@ def _block_trends(dummies: np.ndarray) -> np.ndarray:
 
 def participant_blocks(chosen: Measure, part: pd.DataFrame, rows: slice, cols: Sequence[Mapping[str, np.ndarray]],
                        specs: Sequence[ModelSpec], chosen_leak: np.ndarray) -> list[dict[str, object]]:
-    """Return one row per block x model (and the baseline) for one participant: per-block OLS BIC and slope.
+    """Return one row per block x model (and the baseline) for one participant: per-block BIC and slope.
 
     Within a block the baseline is an intercept, log trial and (guess
     designs) prev_correct (:attr:`Measure.block_nuisance`); AR(1) errors
     and k as in the fits.
+
+    Parameters
+    ----------
+    chosen, part, rows, cols, specs
+        As :func:`participant_fits`.
+    chosen_leak : numpy.ndarray of bool
+        Per model, whether its leak was chosen on the measure (one more parameter).
+
+    Returns
+    -------
+    list of dict
+        participant, session, block, model, n_trials, bic, slope.
     """
     d = chosen.design(rows, cols, within_block=True)
     if not len(d.y):

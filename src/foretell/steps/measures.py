@@ -100,7 +100,7 @@ class RTResult(Result):
         A learner is called when the selection of per-participant BIC with
         the baseline (``selection``, :func:`foretell.summaries.verdict`) names
         it: it beats the baseline ``none`` and the other learners. None when
-        nothing stands out or the baseline leads.
+        nothing stands out, the baseline leads, or no participant had usable fits.
 
         Parameters
         ----------
@@ -115,7 +115,7 @@ class RTResult(Result):
         UsageError
             For a group the selection does not have.
         """
-        known = list(dict.fromkeys(self.selection["group"].astype(str)))
+        known = list(dict.fromkeys([ALL, *self.selection["group"].astype(str)]))
         if str(group) not in known:
             raise UsageError(f"no group {group!r} in the selection; groups: {', '.join(known) or 'none'}")
         rows = self.selection[(self.selection["group"].astype(str) == str(group)) & self.selection["called"]]
@@ -295,11 +295,7 @@ def _values(log: ValidatedLog, measure: str | pd.Series | np.ndarray) -> tuple[s
 def _rows_of(log: ValidatedLog, chosen: Measure, start: int, stop: int) -> tuple[ValidatedLog, Measure]:
     """Return the log and the measure restricted to rows start:stop (whole participants)."""
     rows = slice(start, stop)
-    part = replace(log, frame=log.frame.iloc[rows].reset_index(drop=True))
-    return part, replace(chosen, values=chosen.values[rows], reason=chosen.reason[rows],
-                         block_order=chosen.block_order[rows], session_order=chosen.session_order[rows],
-                         nuisance=chosen.nuisance[rows], practice=chosen.practice[rows],
-                         block_nuisance=chosen.block_nuisance[rows])
+    return replace(log, frame=log.frame.iloc[rows].reset_index(drop=True)), chosen.part(rows)
 
 
 def _drop_notes(chosen: Measure, frame: pd.DataFrame) -> list[str]:
