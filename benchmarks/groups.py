@@ -117,7 +117,7 @@ def null_study(n_datasets: int, draws: int, jobs: int) -> None:
         effects, joint = res.group_effects, res.group_joint
         called = bool(effects["called"].fillna(False).all())
         not_called += not called
-        outside = (effects["hdi_low"] > 0) | (effects["hdi_high"] < 0)
+        outside = (effects["hdi95_low"] > 0) | (effects["hdi95_high"] < 0)
         counts["per-block HDI (unadjusted)"] += bool(called and outside.any())
         counts["joint summary interval"] += bool(((joint["low"] > 0) | (joint["high"] < 0)).any())
         counts["Holm-corrected permutation p"] += bool((effects["perm_p_holm"] < 0.05).any())

@@ -23,7 +23,7 @@ task, RTs from the simulator's law (driven by a depth-1 learner's entropy).
    (nominal 5%), and how many datasets call a learner. Then RTs that do follow
    a learner (RTLaw, 0.25 log units per bit): how often the generator is called.
 
-Run once, by hand, on a quiet machine: PYTHONPATH=src python benchmarks/rt.py
+Run once, by hand, on a quiet machine: PYTHONPATH=src python benchmarks/rt.py [--sections calibration]
 """
 
 from __future__ import annotations
@@ -141,8 +141,8 @@ def few_blocks() -> None:
                               for m, r in diag.iterrows())
         called = top["model"] if top["called"] else "nothing"
         print(f"  refits <= {refits:>2}: {times[refits]:.1f} s; {per_model}; called: {called} (first "
-              f"{top['model']}; d_elpd of the second {result.compare['d_elpd'].iloc[1]:.1f} +- "
-              f"{result.compare['dse'].iloc[1]:.1f})")
+              f"{top['model']}; elpd_diff of the second {result.compare['elpd_diff'].iloc[1]:.1f} +- "
+              f"{result.compare['elpd_diff_se'].iloc[1]:.1f})")
     print(f"  time with refits / PSIS-LOO alone: {times[10] / times[0]:.2f}x")
 
 
@@ -200,6 +200,12 @@ def calibration() -> None:
 
 
 if __name__ == "__main__":
-    main()
-    few_blocks()
-    calibration()
+    import argparse
+
+    parser = argparse.ArgumentParser(description="Speed and null calibration of the RT analyses.")
+    parser.add_argument("--sections", default="speed,blocks,calibration",
+                        help="comma-separated sections to run: speed (1-2), blocks (3), calibration (4)")
+    chosen = set(parser.parse_args().sections.split(","))
+    for name, section in (("speed", main), ("blocks", few_blocks), ("calibration", calibration)):
+        if name in chosen:
+            section()

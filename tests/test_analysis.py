@@ -30,12 +30,12 @@ CONTRACT = {
                "lapse_block", "converged", "cv_converged", "message"],
     "winners": ["participant", "group", "block", "best_model", "runner_up", "criterion", "delta",
                 "strength"],
-    "selection": ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor",
+    "selection": ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk",
                   "freq_concentration", "method", "note"],
     "selection_blocks": ["group", "block", "model", "expected_freq", "exceedance",
-                         "protected_exceedance", "bor"],
-    "families": ["group", "family", "expected_freq", "exceedance", "protected_exceedance", "bor"],
-    "families_blocks": ["group", "block", "family", "expected_freq", "protected_exceedance", "bor"],
+                         "protected_exceedance", "omnibus_risk"],
+    "families": ["group", "family", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk"],
+    "families_blocks": ["group", "block", "family", "expected_freq", "protected_exceedance", "omnibus_risk"],
     "contexts": ["participant", "block", "context", "n_obs", "leaf_prob", "in_source_tree", "model",
                  "expected_leaf_prob"],
     "context_agreement": ["participant", "block", "source_context", "status", "response_leaf",
@@ -197,7 +197,8 @@ def test_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[s
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--jobs", "2"]) == 0
     assert (out / "report.html").is_file() and (out / "rt" / "rt_compare.csv").is_file()
-    assert "Provisional" in (out / "report.html").read_text()
+    html = (out / "report.html").read_text()
+    assert "Simulated demo data" in html and "command: foretell demo" in html
 
 
 def test_drifting_choice_determinism_is_not_mistaken_for_a_change_of_model() -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 from pathlib import Path
 
@@ -424,3 +425,72 @@ def test_a_design_check_of_another_task_is_refused(tmp_path: Path, capsys) -> No
     code = main(["analyze", str(log), "--task", "compass-fair", "--recovery", str(design), "--out",
                  str(tmp_path / "r"), "--skip", "fit,rt,groups,events,report"])
     assert code == 1 and "made on another task, not 'compass-fair'" in capsys.readouterr().err
+
+
+def test_a_misspelt_task_name_or_model_id_gets_a_did_you_mean(tmp_path: Path, capsys) -> None:
+    assert main(["task", "tide-gaueg"]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("error: tide-gaueg: ") and err.rstrip().endswith("(did you mean 'tide-gauge'?)")
+    assert main(["task", "nothing-like-it"]) == 1  # nothing close: the list of shipped tasks instead
+    assert "did you mean" not in (err := capsys.readouterr().err) and "tide-gauge" in err
+    log = _log(tmp_path, ["p01,1,1,up,down,0.41", "p01,1,2,down,up,0.5"])
+    out = tmp_path / "f"
+    assert main(["fit", str(log), "--task", "tide-gauge", "--models", "count-1,cuont-2", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "unknown model 'cuont-2'" in err and err.rstrip().endswith("(did you mean 'count-2'?)")
+
+
+def test_check_ends_with_a_verdict(tmp_path: Path, capsys) -> None:
+    rows = [f"p01,1,{t},up,down,0.41" for t in range(1, 21)] + ["p02,1,1,down,up,0.5"]
+    assert main(["check", str(_log(tmp_path, rows)), "--task", "tide-gauge"]) == 0
+    last = capsys.readouterr().out.rstrip().splitlines()[-1]
+    assert last == "verdict: the log is ready to analyse (2 participants, 21 trials; 1 with nothing to fit, left out)"
+    assert main(["check", str(_log(tmp_path, rows[-1:], name="one.csv")), "--task", "tide-gauge"]) == 0
+    assert capsys.readouterr().out.rstrip().splitlines()[-1].startswith("verdict: nothing to analyse")
+    bad = _log(tmp_path, ["p01,1,1,up,down,0.41", "p01,1,2,sideways,up,abc"], name="bad.csv")
+    assert main(["check", str(bad), "--task", "tide-gauge"]) == 1
+    captured = capsys.readouterr()
+    assert captured.out.rstrip().splitlines() == ["verdict: 2 problems, fix them first"]
+    assert captured.err.count("error: ") == 2
+
+
+def _subcommands():
+    from foretell.cli.parser import build_parser
+
+    parser = build_parser()
+    (sub,) = [a for a in parser._actions if isinstance(a, argparse._SubParsersAction)]
+    return sub.choices
+
+
+def test_every_help_shows_every_default_and_a_description(capsys) -> None:
+    for name, parser in _subcommands().items():
+        text = " ".join(parser.format_help().split())
+        assert parser.description and parser.description in text, name
+        for action in parser._actions:
+            unset = action.default in (None, False, "", [], argparse.SUPPRESS)
+            if action.option_strings and not unset and action.help:
+                shown = " ".join(parser._get_formatter()._expand_help(action).split())
+                assert "default" in shown, (name, action.option_strings)
+    demo = _subcommands()["demo"].format_help()
+    assert "--seed" in demo and "(default: 0)" in demo and "the demo data stay the same" in " ".join(demo.split())
+
+
+def test_batch_jobs_get_plain_progress_lines(tmp_path: Path, capsys) -> None:
+    ups = ["up", "down", "down", "up", "up", "down"]
+    rows = [f"p0{p},1,{t},{ups[t % 6]},{ups[(t + p) % 6]},0.4" for p in (1, 2) for t in range(1, 31)]
+    code = main(["fit", str(_log(tmp_path, rows)), "--task", "tide-gauge", "--models", "count-0,count-1",
+                 "--out", str(tmp_path / "f")])
+    err = capsys.readouterr().err
+    assert code == 0, err
+    assert "[foretell] fit: 2/2 participants fitted\n" in err and "\r" not in err  # stderr is not a terminal here
+
+
+def test_notes_are_wrapped_to_short_lines(capsys) -> None:
+    from foretell.cli.commands import WIDTH, say_notes
+
+    words = "the hierarchical model of optimal_rate was not called (R-hat 1.04 > 1.01), so the curves have no"
+    say_notes([words + " intervals from it; pass rt_unit='ms' (CLI: --rt-unit ms)", "short"])
+    lines = capsys.readouterr().err.splitlines()
+    assert all(len(line) <= WIDTH < 100 for line in lines) and len(lines) == 3
+    assert lines[0].startswith("note: the hierarchical") and lines[1].startswith("  ") and lines[2] == "note: short"
+    assert " ".join(line.strip() for line in lines[:2]).endswith("intervals from it; pass --rt-unit ms")

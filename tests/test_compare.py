@@ -27,7 +27,7 @@ from foretell.models import lookalikes, parse_model
 DEFAULT_MODELS = ["count-0", "count-1", "count-2", "count-3", "count-0-leak", "count-1-leak",
                   "count-task", "mix-3", "source"]
 
-SELECTION_COLUMNS = ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor",
+SELECTION_COLUMNS = ["group", "model", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk",
                      "freq_concentration", "n_participants", "criterion", "method", "note"]
 
 
@@ -181,7 +181,7 @@ def test_selection_blocks_and_families_tables():
     assert g1["protected_exceedance"].idxmax() == "count-0"
     fam = families(fits)
     assert fam.columns.tolist() == ["group", "family", "expected_freq", "exceedance", "protected_exceedance",
-                                    "bor", "freq_concentration", "n_participants", "criterion", "method",
+                                    "omnibus_risk", "freq_concentration", "n_participants", "criterion", "method",
                                     "models", "note"]
     assert (fam["method"] == "gibbs").all()
     g1 = fam[fam["group"] == "g1"].set_index("family")

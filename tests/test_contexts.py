@@ -63,7 +63,7 @@ def test_depth1_rule_gives_a_depth1_response_tree(lantern):
     assert overall.loc["red", "status"] == "distinguished"
     assert overall.loc["blue", "status"] == "distinguished"
     deep = overall[overall["depth"] >= 2]
-    assert (deep["status"] == "merged").all() and (deep["response_leaf"] == "green").all()
+    assert (deep["status"] == "merged into shorter").all() and (deep["response_leaf"] == "green").all()
 
 
 def test_source_argmax_guesser_distinguishes_every_source_context(lantern):
@@ -86,7 +86,7 @@ def test_deeper_rule_than_the_source_shows_split_deeper():
     x = task.sample(800, seed=3)
     rep = context_report(_log(x, np.r_[0, x[:-1]], block=1), task, blocks=False)
     agree = context_agreement(rep, task)
-    assert agree["status"].tolist() == ["split-deeper"] and agree["response_leaf"].tolist() == [""]
+    assert agree["status"].tolist() == ["split into longer"] and agree["response_leaf"].tolist() == [""]
     const = context_agreement(context_report(_log(x, np.zeros_like(x), block=1), task), task)
     assert (const["status"] == "distinguished").all()
     assert set(agree["status"]) <= set(STATUSES)
@@ -165,7 +165,7 @@ def test_recency_alone_splits_the_tree_but_stays_within_the_winning_model():
     rep = context_report(log, task, fits=fits, winners=winners, n_replicates=8, seed=1)
     agree = context_agreement(rep, task)
     whole = agree[agree["block"] == "all"]
-    assert (whole["status"] == "split-deeper").mean() >= 0.75  # the defect the baseline answers
+    assert (whole["status"] == "split into longer").mean() >= 0.75  # the defect the baseline answers
     assert (whole["model"] == "count-0-leak").all() and (whole["n_replicates"] == 8).all()
     assert agree["beyond_model"].mean() <= 0.25
     # The same trees against a non-leaky count-0 winner are beyond that model.
@@ -173,7 +173,7 @@ def test_recency_alone_splits_the_tree_but_stays_within_the_winning_model():
     agree0 = context_agreement(context_report(log, task, fits=fits0, winners=winners0,
                                               n_replicates=8, seed=1), task)
     whole0 = agree0[agree0["block"] == "all"]
-    assert whole0.loc[whole0["status"] == "split-deeper", "beyond_model"].mean() >= 0.75
+    assert whole0.loc[whole0["status"] == "split into longer", "beyond_model"].mean() >= 0.75
 
 
 def test_context_use_deeper_than_the_winning_model_is_beyond_it(tide):

@@ -129,7 +129,7 @@ def test_power_and_false_positive_tables():
     # exact intervals against scipy.stats.binomtest (Clopper & Pearson, 1934; Virtanen et al., 2020)
     for g, k in (("count-0", 15), ("practice-only", 2)):
         ci = binomtest(k, 20).proportion_ci(0.95, method="exact")
-        assert (r.loc[g, "ci_low"], r.loc[g, "ci_high"]) == pytest.approx((ci.low, ci.high), abs=1e-10)
+        assert (r.loc[g, "ci95_low"], r.loc[g, "ci95_high"]) == pytest.approx((ci.low, ci.high), abs=1e-10)
     assert r.loc["practice-only", "rate"] == "false positive" and r.loc["practice-only", "share"] == 0.1
     assert not r["shown"].any()  # 15 of 20 is not shown to be >= 80%; 0 of 20 not shown to be <= 5%
     assert r.loc["drift-only", "n_datasets_needed"] == 72  # 0 of 72: upper bound 1 - 0.025^(1/72) < 0.05

@@ -288,21 +288,22 @@ def test_a_fit_the_newton_method_cannot_finish_falls_back_to_nelder_mead(lantern
 
 
 # -- against the reference fitter (plain scipy.optimize per fit) --------------------------------------
-@pytest.mark.parametrize("free, fixed", [((), {}), (("leak", "alpha"), {}),
-                                         ((), {"leak": 0.15, "alpha": 2.0})])
-def test_batched_fits_are_at_least_as_good_as_the_reference(tide, free, fixed):
+@pytest.mark.parametrize("free, fixed, n_participants", [
+    ((), {}, 1), (("leak", "alpha"), {}, 1), ((), {"leak": 0.15, "alpha": 2.0}, 2),
+    pytest.param((), {}, 2, marks=pytest.mark.slow), pytest.param(("leak", "alpha"), {}, 2, marks=pytest.mark.slow)])
+def test_batched_fits_are_at_least_as_good_as_the_reference(tide, free, fixed, n_participants):
     # The reference (benchmarks/reference_fitting.py) is the previous per-fit L-BFGS-B path with
     # block refits of every free parameter; every log-likelihood must match it to 1e-6 or beat it:
     # default models; leak and alpha freed (counting with two learner parameters, the mixture
-    # with alpha); leak and alpha held at given values.
-    log, _ = simulate_participants(tide, 2, 3, models=["count-1", "count-0-leak"], seed=22,
+    # with alpha); leak and alpha held at given values. One participant in the default run, two in the slow one.
+    log, _ = simulate_participants(tide, n_participants, 3, models=["count-1", "count-0-leak"], seed=22,
                                    block_length=50)
     valid = validate_log(log, tide)
     models = ["count-0", "count-1-leak", "mix-3"] if free or fixed else default_models(tide)
     new = fit_participants(valid, tide, models, free=free, fixed=fixed, seed=0)
     old = reference_fitting.fit_participants(valid.frame, tide, models, free=free, fixed=fixed, seed=0)
     fits = new.fits.merge(old.fits, on=["participant", "model"], suffixes=("", "_ref"))
-    assert len(fits) == len(new.fits) == 2 * len(models)
+    assert len(fits) == len(new.fits) == n_participants * len(models)
     if fixed:
         counting = fits["model"].str.startswith("count")
         assert (fits.loc[counting, "leak"] == 0.15).all() and (fits["alpha"] == 2.0).all()

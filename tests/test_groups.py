@@ -257,7 +257,7 @@ def test_the_model_joint_summary_is_the_mean_and_slope_of_the_posterior_block_di
     assert uncalled[["estimate", "low", "high", "prob_positive"]].isna().all().all()
     # the step takes the posterior's numbers where the model was called, the participants' otherwise
     out = joint_effects(curves, [("B", "A")], posterior=joint, n_permutations=99, seed=0)
-    assert (out["method"] == POSTERIOR).all() and (out["level"] == 0.94).all()
+    assert (out["method"] == POSTERIOR).all() and (out["level"] == 0.95).all()
     assert out.set_index("summary").loc["learning slope", "estimate"] == pytest.approx(slope.mean())
     out = joint_effects(curves, [("B", "A")], posterior=uncalled, n_permutations=99, seed=0)
     assert (out["method"] == PERMUTATION).all() and (~out["called"]).all()
@@ -307,8 +307,11 @@ def test_figures_are_drawn_only_when_asked_for(study, lantern):
     assert set(makers) == {"curve_optimal_rate", "context_learning"}
     assert all(callable(draw) for draw in makers.values())
     fig = makers["curve_optimal_rate"]()
-    assert fig.axes[0].get_ylabel() == "optimal_rate (share of trials)"
+    assert fig.axes[0].get_ylabel() == "optimal-guess rate (share of trials)"
     assert fig.axes[0].get_title() == "Guesses of the most likely next symbol by block"
+    said = {t.get_text() for t in fig.axes[0].texts}
+    levels = {round(float(line.get_ydata()[0]), 6) for line in fig.axes[0].get_lines() if len(set(line.get_ydata())) == 1}
+    assert {"chance", "source's ceiling"} <= said and {round(1 / 3, 6), 1.0} <= levels  # three symbols; optimal guesses
     assert res.files() == sorted([f"{n}.csv" for n in res.tables()] + ["summary.txt"]
                                  + [f"figures/{n}.png" for n in makers])
 
@@ -318,10 +321,10 @@ def test_the_curve_figure_says_its_model_bands_are_unadjusted():
     from foretell.plots.groups import curve_figure
 
     table = pd.DataFrame({"group": ["A", "A"], "session": "1", "block": ["1", "2"], "metric": "accuracy",
-                          "participant_mean": [0.5, 0.6], "mean": [0.52, 0.58], "hdi_low": [0.4, 0.5],
-                          "hdi_high": [0.6, 0.7]})
+                          "participant_mean": [0.5, 0.6], "mean": [0.52, 0.58], "hdi95_low": [0.4, 0.5],
+                          "hdi95_high": [0.6, 0.7]})
     legend = [t.get_text() for t in curve_figure(table, METRICS["accuracy"]).axes[0].get_legend().get_texts()]
-    assert legend == ["A: mean of participants", "A: model, 94% HDI per block (unadjusted)"]
+    assert legend == ["A: mean of participants", "A: model, 95% HDI per block (unadjusted)"]
 
 
 def test_one_group_and_small_groups_get_curves_only(study, lantern):

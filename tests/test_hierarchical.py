@@ -16,8 +16,9 @@ from foretell.errors import UsageError
 from foretell.hierarchical import sampling
 from foretell.hierarchical.forms import choose_by_strength, requested_forms
 from foretell.hierarchical.gate import Gate, diagnose
-from foretell.hierarchical.group_model import (GroupModelSpec, build_model, fit_group_model, model_data,
-                                               participant_intercepts, summarise_group_model)
+from foretell.hierarchical.group_model import (GroupModelSpec, build_model, fit_group_model, group_data,
+                                               group_structure, model_data, participant_intercepts,
+                                               pointwise_loglik, summarise_group_model)
 from foretell.hierarchical.loo import RefitWrapper, exact_refits, exact_units, psis_loo
 from foretell.hierarchical.sampling import sample, sampling_cores
 
@@ -55,35 +56,44 @@ def tiny_model():
     return model
 
 
-def test_a_short_trace_is_an_interruption_not_a_result(tiny_model, monkeypatch):
+def _samplers(monkeypatch, which, fake):
+    """Route :func:`sample` to ``fake`` in place of ``which``'s sampler (no compilation)."""
+    import nutpie
     import pymc as pm
 
-    def cut_short(*, draws, chains, **_):  # what PyMC returns after Ctrl-C: chains cut short
-        return az.from_dict(posterior={"x": np.zeros((chains, draws - 53))})
+    monkeypatch.setattr(sampling, "sampler_name", lambda: which)
+    monkeypatch.setattr(sampling.Structure, "compiled", lambda self: object())
+    monkeypatch.setattr(pm, "sample", fake)
+    monkeypatch.setattr(nutpie, "sample", lambda compiled, **options: fake(**options))
 
-    monkeypatch.setattr(pm, "sample", cut_short)
+
+@pytest.mark.parametrize("which", ["nutpie", "pymc"])
+def test_a_short_trace_is_an_interruption_not_a_result(tiny_model, monkeypatch, which):
+    def cut_short(*, draws, chains, **_):  # what the samplers return after Ctrl-C: chains cut short
+        return az.from_dict(posterior={"x": np.zeros((chains, draws - 53))},
+                            sample_stats={"diverging": np.zeros((chains, draws - 53), bool)})
+
+    _samplers(monkeypatch, which, cut_short)
     with pytest.raises(KeyboardInterrupt, match="2 chains x 147 draws of 2 x 200"):
         sample(tiny_model, draws=200, tune=10, chains=2, seed=0)
 
 
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])
 def test_a_signal_during_sampling_wins_over_the_trace(tiny_model, monkeypatch, signum):
-    import pymc as pm
-
     class Terminated(KeyboardInterrupt):  # as a command line turns SIGTERM into an interruption
         pass
 
     def on_term(signum, frame):
         raise Terminated()
 
-    def swallowing(*, draws, chains, **_):  # PyMC catches KeyboardInterrupt and returns what it has
+    def swallowing(*, draws, chains, **_):  # the samplers catch KeyboardInterrupt and return what they have
         try:
             os.kill(os.getpid(), signum)
         except KeyboardInterrupt:
             pass
         return az.from_dict(posterior={"x": np.zeros((chains, draws))})
 
-    monkeypatch.setattr(pm, "sample", swallowing)
+    _samplers(monkeypatch, "nutpie", swallowing)
     previous = signal.signal(signal.SIGTERM, on_term)
     try:
         with pytest.raises(KeyboardInterrupt) as caught:
@@ -292,10 +302,15 @@ def test_model_structure_follows_the_spec():
     curves = _rate_curves(np.random.default_rng(1), {"A": [0, 0, 0], "B": [0, 0, 0]}, n_blocks=3)
     data = _rates(curves, ["A", "B"])
     linear = build_model(data, GroupModelSpec(trend="linear", parameterisation="non-centred"))
-    assert {"level", "slope", "cell", "sd_intercept", "intercept_z", "sd_block_slope",
+    assert {"level", "slope", "cell", "sd_intercept", "intercept_raw", "sd_block_slope",
             "block_slope_z"} <= set(linear.named_vars)
     centred = build_model(data, GroupModelSpec())
-    assert "intercept_z" not in centred.named_vars and "block_slope_z" in centred.named_vars
+    assert "cell" in centred.named_vars and "block_slope_z" in centred.named_vars
+    # the form is data, not structure: one compiled model serves both (Gorinova, Moore & Hoffman, 2020)
+    assert group_data(data, GroupModelSpec())["intercept_form"] == 1.0
+    assert group_data(data, GroupModelSpec(parameterisation="non-centred"))["intercept_form"] == 0.0
+    assert group_structure(data, GroupModelSpec()) is group_structure(data, GroupModelSpec(
+        parameterisation="non-centred"))
     one_block = _rates(curves[curves["block"] == "1"], ["A", "B"])
     assert "block_slope" not in build_model(one_block).named_vars
     with pytest.raises(UsageError):
@@ -325,13 +340,41 @@ def test_group_model_finds_a_late_difference_and_no_null_difference():
     assert fit.diagnostics.ok, fit.diagnostics.reasons
     assert math.isfinite(fit.diagnostics.pareto_k_max)  # reported, not checked: the model is not compared by LOO
     eff = fit.effects.set_index(["contrast", "block"])
-    excludes_zero = (eff["hdi_low"] > 0) | (eff["hdi_high"] < 0)
+    excludes_zero = (eff["hdi95_low"] > 0) | (eff["hdi95_high"] < 0)
     assert not excludes_zero["B-A"].any()
     assert excludes_zero["C-A"].loc[["3", "4"]].all()
     assert (eff.loc["C-A"].loc[["3", "4"], "prob_positive"] > 0.97).all()
     curves_c = fit.group_curves[fit.group_curves["group"] == "C"]
-    assert ((curves_c["hdi_low"] < curves_c["mean"]) & (curves_c["mean"] < curves_c["hdi_high"])).all()
+    assert ((curves_c["hdi95_low"] < curves_c["mean"]) & (curves_c["mean"] < curves_c["hdi95_high"])).all()
     # a posterior that fails the gate says nothing
     quiet_curves, quiet_effects = summarise_group_model(data, fit.posterior, [("C", "A")], called=False)
-    assert quiet_effects[["diff_mean", "hdi_low", "hdi_high", "prob_positive"]].isna().all().all()
+    assert quiet_effects[["diff_mean", "hdi95_low", "hdi95_high", "prob_positive"]].isna().all().all()
     assert not quiet_curves["called"].any() and quiet_curves["mean"].isna().all()
+
+
+@pytest.mark.parametrize("kind", ["binomial", "gaussian"])
+def test_pointwise_loglik_equals_pymc_own(kind):
+    import pymc as pm
+
+    curves = _rate_curves(np.random.default_rng(3), {"A": [0, 0, 0], "B": [0, 0.4, 0.8]}, n_blocks=3)
+    data = model_data(curves, "optimal_rate", ["A", "B"], kind=kind, log=False)
+    model = build_model(data, GroupModelSpec(parameterisation="non-centred"))
+    with model:
+        prior = pm.sample_prior_predictive(draws=40, random_seed=2).prior
+    idata = az.InferenceData(posterior=prior.drop_vars("y", errors="ignore"))
+    with model:  # reference: PyMC's own pointwise log-likelihood of the same draws
+        expected = pm.compute_log_likelihood(idata, progressbar=False, extend_inferencedata=False)["y"].to_numpy()
+    np.testing.assert_allclose(pointwise_loglik(data, idata), expected, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("weight", [0.0, 1.0])
+def test_partial_level_is_normal_mu_tau_in_either_form(weight):
+    import pymc as pm
+
+    from foretell.hierarchical.forms import partial_level
+
+    with pm.Model():
+        theta = partial_level("theta", 2.0, 0.5, pm.Data("w", weight), shape=20_000)
+    values = pm.draw(theta, random_seed=1)
+    # Normal(2, 0.5) whatever the form (Papaspiliopoulos, Roberts & Sköld, 2007)
+    assert values.mean() == pytest.approx(2.0, abs=0.02) and values.std() == pytest.approx(0.5, abs=0.02)

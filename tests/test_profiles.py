@@ -54,7 +54,8 @@ def test_layout_through_its_profile_gives_the_canonical_log_and_fits(layout, lan
     assert log.rt_unit in ("s", "ms") and len(log.sources) == 6
     assert log.sources == tuple(sorted(log.sources))
     assert log.mapped[0] == f"profile {EXAMPLES / f'{layout}.toml'}"
-    assert_same_fits(foretell.fit(log, lantern, models=MODELS, seed=0), fits)
+    if layout == LAYOUTS[0]:  # the fits are a function of the frame (RTs in seconds), equal above for every layout
+        assert_same_fits(foretell.fit(log, lantern, models=MODELS, seed=0), fits)
 
 
 def test_what_the_profile_mapped_is_reported(lantern):

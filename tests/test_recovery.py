@@ -43,13 +43,13 @@ def twins():
 # -- the confusion matrix ---------------------------------------------------------------------------
 def test_confusion_is_row_stochastic(depth_result) -> None:
     conf = depth_result.confusion
-    assert list(conf.columns) == ["trials", "generating_model", "fitted_model", "fraction", "ci_low",
-                                  "ci_high", "n", "recovered", "n_needed"]
+    assert list(conf.columns) == ["trials", "generating_model", "fitted_model", "fraction", "ci95_low",
+                                  "ci95_high", "n", "recovered", "n_needed"]
     assert len(conf) == 9
     sums = conf.groupby(["trials", "generating_model"])["fraction"].sum()
     np.testing.assert_allclose(sums, 1.0)
     assert (conf["n"] == 12).all()
-    assert ((conf["ci_low"] <= conf["fraction"]) & (conf["fraction"] <= conf["ci_high"])).all()
+    assert ((conf["ci95_low"] <= conf["fraction"]) & (conf["fraction"] <= conf["ci95_high"])).all()
 
 
 def test_depths_are_recovered_at_600_trials(depth_result) -> None:
@@ -269,7 +269,7 @@ def test_bad_arguments_are_usage_errors(kwargs, message) -> None:
 
 def test_progress_bar_on_request(capsys) -> None:
     recover(FAIR, models=["count-0", "count-1"], n_participants=2, trial_counts=[50], progress=True)
-    assert "recovery" in capsys.readouterr().err
+    assert "[foretell] recover: 2/2 cells done (count-1 at 50 trials)\n" in capsys.readouterr().err  # not a terminal
 
 
 # -- the answer and the figures ------------------------------------------------------------------------

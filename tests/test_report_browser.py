@@ -1,10 +1,11 @@
-"""The report as a browser renders it: every figure decodes, and the page asks the network for nothing.
+"""The report as a browser renders it: figures decode and read, nothing overflows, it prints, no network.
 
 Headless Chromium loads a harness page (test code, not part of the report)
 from a local HTTP server; the harness shows report.html in a same-origin
-iframe and, once it has loaded, writes what it finds (each <img>'s
-naturalWidth, the number of scripts and stylesheets) into its own DOM, which
-``--dump-dom`` prints. Every request the browser makes is recorded: those for
+iframe 1,280 px wide and, once it has loaded, writes what it finds (each
+<img>'s natural and displayed width, the page's scroll width, whether the
+findings come before the first table, the number of scripts and stylesheets)
+into its own DOM, which ``--dump-dom`` prints. Every request the browser makes is recorded: those for
 the local server by the server, and any other (the browser's proxy is set
 to a second local server that records and refuses everything). Chromium's
 own service calls (updater, sign-in, network time; :data:`BROWSER_HOSTS`)
@@ -15,7 +16,9 @@ installed (Debian: ``apt-get install chromium``).
 
 from __future__ import annotations
 
+import base64
 import http.server
+import io
 import json
 import re
 import shutil
@@ -40,19 +43,25 @@ BROWSER_HOSTS = frozenset({"update.googleapis.com", "accounts.google.com", "clie
 HARNESS = """<!DOCTYPE html>
 <html><head><meta charset="utf-8"><link rel="icon" href="data:,"></head>
 <body><pre id="result">pending</pre>
-<iframe id="page" src="report.html" width="1200" height="900"></iframe>
+<iframe id="page" src="report.html" width="1280" height="900" style="border: 0; display: block"></iframe>
 <script>
 document.getElementById("page").addEventListener("load", function () {
   var doc = this.contentDocument;
   var images = Array.prototype.map.call(doc.images, function (img) {
     return {complete: img.complete, width: img.naturalWidth, height: img.naturalHeight,
+            shown: img.getBoundingClientRect().width,
             data: img.getAttribute("src").indexOf("data:image/png;base64,") === 0};
   });
+  var findings = doc.getElementById("findings"), firstTable = doc.querySelector("table");
   document.getElementById("result").textContent = JSON.stringify({
     title: doc.title, images: images, scripts: doc.scripts.length,
     stylesheets: doc.querySelectorAll("link[rel=stylesheet]").length,
     resources: this.contentWindow.performance.getEntriesByType("resource").map(function (r) { return r.name; }),
-    sections: Array.prototype.map.call(doc.querySelectorAll("section"), function (s) { return s.id; })});
+    sections: Array.prototype.map.call(doc.querySelectorAll("section"), function (s) { return s.id; }),
+    viewport: this.contentWindow.innerWidth, scrollWidth: doc.documentElement.scrollWidth,
+    findingsFirst: !!findings && !!firstTable
+      && (findings.compareDocumentPosition(firstTable) & Node.DOCUMENT_POSITION_FOLLOWING) !== 0
+      && findings.getBoundingClientRect().bottom <= firstTable.getBoundingClientRect().top});
 });
 </script></body></html>
 """
@@ -114,13 +123,13 @@ def rendered(tmp_path_factory):
     assert match, f"Chromium printed no harness result (exit {run.returncode}): {run.stderr[-2000:]}"
     text = match.group(1).replace("&quot;", '"').replace("&amp;", "&").replace("&lt;", "<").replace("&gt;", ">")
     assert text != "pending", "the report did not finish loading in the browser"
-    return json.loads(text), report.html.count("<img "), list(served), list(proxied)
+    return json.loads(text), report.html, list(served), list(proxied)
 
 
 def test_every_figure_decodes_in_the_browser(rendered):
-    result, images, _, _ = rendered
+    result, page, _, _ = rendered
     assert result["title"] == "foretell analysis report"
-    assert len(result["images"]) == images > 0
+    assert len(result["images"]) == page.count("<img ") > 0
     for image in result["images"]:
         assert image["data"] and image["complete"] and image["width"] > 0 and image["height"] > 0, image
 
@@ -132,3 +141,42 @@ def test_the_page_requests_nothing_and_runs_nothing(rendered):
     assert result["resources"] == []
     assert result["scripts"] == 0 and result["stylesheets"] == 0
     assert {"data", "models", "trees", "curves", "design", "methods"} <= set(result["sections"])
+
+
+def test_nothing_overflows_a_1280_pixel_window_and_the_findings_come_first(rendered):
+    result, _, _, _ = rendered
+    assert result["viewport"] == 1280
+    assert result["scrollWidth"] <= result["viewport"]
+    assert result["findingsFirst"]
+
+
+def test_figure_text_is_at_least_nine_pixels_as_displayed(rendered):
+    # pixels of a glyph = points x dpi / 72 (a point is 1/72 inch, common practice), scaled by shown / natural width
+    from PIL import Image
+
+    from foretell.plots.common import SMALLEST_FONT
+
+    result, page, _, _ = rendered
+    sources = re.findall(r'<img src="data:image/png;base64,([^"]+)"', page)
+    assert len(sources) == len(result["images"])
+    for data, image in zip(sources, result["images"]):
+        png = Image.open(io.BytesIO(base64.b64decode(data)))
+        points, dpi = float(png.text[SMALLEST_FONT]), float(png.info["dpi"][0])
+        assert image["shown"] > 0 and image["width"] == png.width
+        shown = points * dpi / 72 * image["shown"] / image["width"]
+        assert shown >= 9, (png.width, points, image["shown"], shown)
+
+
+def test_the_page_prints_to_pdf(rendered, tmp_path):
+    _, page, _, _ = rendered
+    (tmp_path / "report.html").write_text(page, encoding="utf-8")
+    pdf = tmp_path / "report.pdf"
+    run = subprocess.run(
+        [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+         "--no-first-run", "--disable-extensions", f"--user-data-dir={tmp_path / 'profile'}",
+         "--no-pdf-header-footer", f"--print-to-pdf={pdf}", (tmp_path / "report.html").as_uri()],
+        capture_output=True, text=True, timeout=120)
+    assert pdf.is_file(), f"Chromium wrote no PDF (exit {run.returncode}): {run.stderr[-2000:]}"
+    data = pdf.read_bytes()
+    assert data.startswith(b"%PDF-") and data.rstrip().endswith(b"%%EOF")  # PDF file structure (ISO 32000)
+    assert len(data) > len(page) // 4  # the figures are in it, not just an empty page

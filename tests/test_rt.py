@@ -22,6 +22,7 @@ from foretell.models import model_specs
 from foretell.regressors import regressors
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.steps.guesses import fit
+from foretell.steps.measure_calls import in_play
 from foretell.steps.measures import RTResult, analyze_rt
 from foretell.tasks import Task
 from foretell.validation import child_int
@@ -45,12 +46,12 @@ def test_depth_one_learner_is_called_by_random_effects_selection_with_the_baseli
     compare = result.compare
     assert list(compare["model"].iloc[:1]) == ["count-1"] and set(compare["model"]) == {"count-0", "count-1",
                                                                                          "count-2", "none"}
-    assert (compare["criterion"] == "rfx_bms_bic").all() and compare["elpd"].isna().all()
+    assert (compare["criterion"] == "rfx_bms_bic").all() and compare["elpd_loo"].isna().all()
     assert compare["called"].tolist() == [True, False, False, False]
     assert compare["evidence"].iloc[0] in ("clear", "ahead") and (compare["evidence"].iloc[1:] == "behind").all()
     assert result.verdict() == "count-1" and result.verdict("sim") == "count-1"
     selection = result.selection  # group x model, as the guess side's selection.csv
-    assert {"group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor", "n_participants",
+    assert {"group", "model", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk", "n_participants",
             "criterion", "method", "called", "note"} <= set(selection.columns)
     assert set(selection["group"]) == {"all", "sim"} and selection.groupby("group")["called"].sum().eq(1).all()
     fits = result.fits
@@ -195,7 +196,7 @@ def test_hierarchical_model_passes_the_gate(lantern):
     # Ten blocks per participant: a left-out unit is a tenth of its participant's trials (with four
     # blocks a unit's pull on its participant's own parameters gave Pareto k above 0.7).
     log = _gate_study(lantern, 10, 10, 40, np.linspace(0.1, 0.9, 10))  # slopes far apart: centred
-    result = analyze_rt(log, lantern, models=["count-1"], draws=1000, tune=1000, chains=4, seed=2)
+    result = analyze_rt(log, lantern, models=["count-1"], draws=1000, tune=1000, chains=4, seed=2, loo=True)
     diag = result.diagnostics.set_index("model")
     assert list(diag.index) == ["count-1", "none"] and not diag["provisional"].any()  # the full run
     assert diag.loc["count-1", "ok"], diag.loc["count-1", "reasons"]  # the default Gate (Vehtari et al., 2021; 2017)
@@ -215,7 +216,7 @@ def test_hierarchical_run_reports_its_gate(tide):
     frame, _ = simulate_participants(tide, 3, 2, models=["count-1"], seed=4, block_length=30)
     log = validate_log(frame, tide)
     result = analyze_rt(log, tide, models=["count-0", "count-1"], draws=50, tune=50, chains=2, seed=1,
-                        refits=0)  # exact refits: test_units_with_a_high_pareto_k_are_refitted
+                        refits=0, hierarchical_models="all", loo=True)  # refits: test_units_with_a_high_pareto_k_...
     diag = result.diagnostics
     assert list(diag["model"]) == ["count-0", "count-1", "none"]
     assert (diag["slope_form"].iloc[:2] == "non-centred").all() and diag["provisional"].all()
@@ -242,7 +243,7 @@ def test_units_with_a_high_pareto_k_are_refitted(tide):
     table = regressors(log, tide, specs)
     columns = {c: table[c].to_numpy() for c in ("entropy", "leak", "alpha", "params_from")}
     pooled = pool_measure(chosen, log.frame, columns, 0, 1)
-    loose = Gate(rhat_max=1.2, ess_bulk_per_chain=10, max_divergences=10)  # short runs; k is the point
+    loose = Gate(rhat_max=1.2, ess_bulk_per_chain=5, max_divergences=10)  # short runs; k is the point
     run = {"draws": 150, "tune": 150, "chains": 2, "seed": 1, "labels": ("rt", "count-1"),
            "requested": {"intercept": "auto", "practice": "auto", "slope": "auto"}}
     capped = fit_measure_model(pooled, "count-1", gate=replace(loose, pareto_k_max=0.0), refits=0, **run)
@@ -271,12 +272,13 @@ def test_a_raw_measure_gets_priors_on_its_own_scale(lantern):
     level = rng.normal(5.0, 2.0, size=10)[log.frame["participant"].astype("category").cat.codes.to_numpy()]
     amplitude = level + 3.35 * table["entropy"].to_numpy() + 8.0 * rng.normal(size=len(table))
     result = analyze_rt(log, lantern, models=["count-1"], measure=pd.Series(amplitude), locked="guess", draws=300,
-                        tune=300, chains=2, seed=3, refits=0, gate=Gate(ess_bulk_per_chain=50))
+                        tune=300, chains=2, seed=3, refits=0, gate=Gate(ess_bulk_per_chain=50),
+                        hierarchical_models="all")
     population = result.population.set_index(["model", "parameter"])
     slope = population.loc[("count-1", "slope_mean")]
-    assert slope["unit"] == "per_bit" and slope["low"] < 3.35 < slope["high"]
+    assert slope["unit"] == "per_bit" and slope["ci95_low"] < 3.35 < slope["ci95_high"]
     sigma = population.loc[("count-1", "sigma")]
-    assert sigma["mean"] == pytest.approx(8.0, rel=0.05) and sigma["low"] < 8.0 < sigma["high"]
+    assert sigma["mean"] == pytest.approx(8.0, rel=0.05) and sigma["ci95_low"] < 8.0 < sigma["ci95_high"]
     per_participant = result.fits[result.fits["model"] == "count-1"]["slope_per_bit"].mean()
     assert abs(per_participant - slope["mean"]) < 1.0  # the two paths agree
 
@@ -289,8 +291,9 @@ def _prior_as_posterior(fails: dict):
     import arviz as az
     import pymc as pm
 
-    def nuts(model, *, draws, chains, seed, target_accept, **_):
-        with model:
+    def nuts(shared, data, *, draws, chains, seed, target_accept, **_):
+        with shared.model:
+            pm.set_data(data)
             prior = pm.sample_prior_predictive(draws=chains * draws, random_seed=seed).prior
         posterior = {name: prior[name].to_numpy().reshape(chains, draws, *prior[name].shape[2:])
                      for name in prior.data_vars}
@@ -309,7 +312,7 @@ def test_a_model_that_keeps_diverging_is_left_out_and_the_others_compared(tide, 
     monkeypatch.setattr(sampling, "_nuts", _prior_as_posterior(fails))
     gate = Gate(rhat_max=math.inf, ess_bulk_per_chain=0, pareto_k_max=math.inf)  # divergences are the point
     result = analyze_rt(log, tide, models=["count-0", "count-1"], draws=40, tune=0, chains=2, seed=seed,
-                        gate=gate)
+                        gate=gate, hierarchical_models="all", loo=True)
     diag = result.diagnostics.set_index("model")
     assert diag.loc["count-0", "target_accept"] == 0.99 and not diag.loc["count-0", "ok"]
     assert "3 divergent transitions" in diag.loc["count-0", "reasons"]
@@ -318,7 +321,7 @@ def test_a_model_that_keeps_diverging_is_left_out_and_the_others_compared(tide, 
     compare = result.compare.set_index("model")
     assert compare.loc["count-0", "evidence"] == "left-out" and not compare.loc["count-0", "called"]
     assert set(compare.index[compare["evidence"] != "left-out"]) == {"count-1", "none"}  # still compared
-    assert compare.loc[["count-1", "none"], "elpd"].notna().all()
+    assert compare.loc[["count-1", "none"], "elpd_loo"].notna().all()
     assert any(n.startswith("left out of the ELPD comparison, failed the gate: count-0") for n in result.notes)
     assert any("count-1: sampler said: 3 divergent transitions at target acceptance 0.95: sampled again at 0.99"
                in n for n in result.notes)
@@ -327,7 +330,25 @@ def test_a_model_that_keeps_diverging_is_left_out_and_the_others_compared(tide, 
 @pytest.mark.slow
 def test_depth_one_learner_ranks_first_by_elpd(lantern_log, lantern):
     result = analyze_rt(lantern_log, lantern, models=["count-0", "count-1"], draws=500, tune=500, chains=2,
-                        seed=3, gate=Gate(pareto_k_max=math.inf), refits=0)  # three blocks: k is not the point
+                        seed=3, gate=Gate(pareto_k_max=math.inf), refits=0, hierarchical_models="all",
+                        loo=True)  # three blocks: k is not the point
     ranked = result.compare[result.compare["evidence"] != "left-out"]
-    assert ranked["model"].iloc[0] == "count-1" and (ranked["d_elpd"].iloc[1:] < 0).all()
+    assert ranked["model"].iloc[0] == "count-1" and (ranked["elpd_diff"].iloc[1:] < 0).all()
     assert result.verdict() == "count-1"  # the random-effects call of the per-participant fits agrees
+
+
+def test_in_play_keeps_the_leader_and_the_models_it_cannot_tell_apart():
+    table = pd.DataFrame({"group": "all", "model": ["count-0", "count-1", "count-2", "none"],
+                          "protected_exceedance": [0.01, 0.6, 0.38, 0.01],
+                          "freq_concentration": [1.0, 20.0, 19.0, 1.0]})
+    kept, why = in_play(table, ["count-0", "count-1", "count-2"])
+    # P(r_lead > r_j) = P(Beta(a_lead, a_j) > 1/2): 1 - 0.5^20 for a_j = 1 (closed form of Beta(a, 1)),
+    # about 0.56 for 20 against 19 (scipy.stats.beta, Virtanen et al., 2020)
+    from scipy.stats import beta
+
+    assert beta.sf(0.5, 20.0, 19.0) < 0.95 < 1 - 0.5 ** 20
+    assert kept == ["count-1", "count-2"] and "count-1" in why
+    led_by_baseline = table.assign(protected_exceedance=[0.01, 0.3, 0.09, 0.6],
+                                   freq_concentration=[1.0, 19.0, 1.0, 20.0])
+    assert in_play(led_by_baseline, ["count-0", "count-1", "count-2"])[0] == ["count-1"]
+    assert in_play(table.iloc[0:0], ["count-0", "count-1"])[0] == ["count-0", "count-1"]  # nothing usable: all

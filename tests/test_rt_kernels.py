@@ -206,7 +206,7 @@ def test_elpd_calls_need_a_margin_of_four_and_two_standard_errors_over_participa
     assert (table["evidence"].iloc[1:] == "distinct").all()
     # the SE of a difference sums units within a participant first: sqrt(P var(per-participant sums))
     d = np.bincount(clusters, loos["none"].loo_i.values - loos["count-1"].loo_i.values)
-    assert table.set_index("model").loc["none", "dse"] == pytest.approx(math.sqrt(20 * np.var(d)))
+    assert table.set_index("model").loc["none", "elpd_diff_se"] == pytest.approx(math.sqrt(20 * np.var(d)))
     assert "called: count-1" in notes[-1] and "Sivula" in notes[-1]
     close = {"count-1": _loo(base + 0.05), "none": _loo(base)}  # 2 nats in all: below the margin of 4
     table, notes = compare_loo(close, {m: _passed() for m in close}, Gate(), clusters=clusters, baseline="none")
@@ -221,7 +221,7 @@ def test_a_model_that_fails_the_gate_is_left_out_and_the_others_compared():
     diagnostics = {"count-1": _passed(False), "count-2": _passed(), "none": _passed()}
     table, notes = compare_loo(loos, diagnostics, Gate(), baseline="none")
     left = table.set_index("model").loc["count-1"]
-    assert left["evidence"] == "left-out" and not left["called"] and np.isnan(left["elpd"])
+    assert left["evidence"] == "left-out" and not left["called"] and np.isnan(left["elpd_loo"])
     assert list(table["model"].iloc[:2]) == ["count-2", "none"]  # the two that passed, compared
     assert any(n.startswith("left out of the ELPD comparison, failed the gate: count-1") for n in notes)
     diagnostics["none"] = _passed(False)
@@ -235,7 +235,7 @@ def test_a_divergent_posterior_is_sampled_again_at_a_higher_target_acceptance(mo
 
     tried = []
 
-    def fake_nuts(model, *, target_accept, draws, chains, **_):
+    def fake_nuts(model, data, *, target_accept, draws, chains, **_):
         tried.append(target_accept)
         diverging = np.zeros((chains, draws), bool)
         diverging[0, 0] = target_accept < 0.99  # divergent at the default 0.95 only

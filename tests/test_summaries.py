@@ -11,11 +11,15 @@ from foretell.text import number, plural
 from foretell.summaries import (
     BOR_MAX,
     CLEAR_PXP,
+    LINE_WIDTH,
     STANDS_OUT_MARGIN,
+    bound_text,
     convergence_text,
+    p_words,
     stands_out_at,
     summary_text,
     verdict,
+    wrapped,
 )
 
 
@@ -23,7 +27,7 @@ def _selection(pxp, bor, group="all", n=10, criterion="bic", **labels):
     """Selection rows of one comparison with the given protected exceedances and omnibus risk."""
     models = [f"count-{i}" for i in range(len(pxp))]
     return pd.DataFrame(dict(group=group, **labels, model=models, expected_freq=np.nan, exceedance=np.nan,
-                             protected_exceedance=pxp, bor=bor, freq_concentration=np.nan,
+                             protected_exceedance=pxp, omnibus_risk=bor, freq_concentration=np.nan,
                              n_participants=n, criterion=criterion, method="variational", note=""))
 
 
@@ -89,11 +93,13 @@ def test_summary_names_the_criterion_the_blocks_and_the_lookalikes():
     assert "cross-validated" in lines[0]
     assert "count-task left out: identical to count-0 on this task" in text
     assert any(line.startswith("group g (3 participants): clear winner: count-0") for line in lines)
-    by_block = next(line for line in lines if "by block" in line)
-    assert "block 1: ahead, not clear: count-0 (pxp 0.90 < 0.95, BOR 0.05)" in by_block
-    assert "block 2: none stands out (top pxp 0.40, BOR 0.70)" in by_block
-    assert "best" not in by_block  # no counts of per-participant winners here
-    own = next(line for line in lines if "own best model" in line)
+    start = lines.index("  by block:")
+    by_block = lines[start + 1:start + 3]
+    assert by_block[0] == ("    block 1: ahead, not clear: count-0 (protected exceedance 0.90 < 0.95; "
+                           "omnibus risk 0.05)")
+    assert by_block[1] == "    block 2: no model stands out (omnibus risk 0.70 > 0.50)"
+    assert not any("best" in line for line in by_block)  # no counts of per-participant winners here
+    own = " ".join(lines[next(i for i, line in enumerate(lines) if "own best model" in line):])
     assert "count-0 2, count-1 1" in own and "1 of 3 participants" in own
     assert "BIC" in summary_text(_winners(["count-0"], ["strong"]), _selection([0.97, 0.03], 0.01))
 
@@ -108,14 +114,14 @@ def test_block_lines_word_a_leader_by_the_same_rule_as_the_whole_session():
                         _selection(rest(0.40), 0.01, group="g", block="3")])
     session = _selection(rest(0.54), 0.01, group="g")
     text = summary_text(_winners(["count-0"], ["strong"]), session, blocks)
-    by_block = next(line for line in text.splitlines() if "by block" in line)
-    parts = dict(part.split(": ", 1) for part in by_block.split("by block: ")[1].split("; "))
+    parts = dict(line.strip().split(": ", 1) for line in text.splitlines() if line.startswith("    block "))
     for block, words in zip(["1", "2", "3"], ["ahead, not clear: count-0", "clear winner: count-0",
-                                             "none stands out"]):
+                                             "no model stands out"]):
         assert parts[f"block {block}"].startswith(words), parts
     status, _, whole = verdict(session, "model")
     assert status == "ahead" and whole.startswith("ahead, not clear: count-0")
-    assert "(pxp 0.54 < 0.95, BOR 0.01)" in parts["block 1"] and ">= 0.95" in parts["block 2"]
+    assert "(protected exceedance 0.54 < 0.95; omnibus risk 0.01)" in parts["block 1"]
+    assert ">= 0.95" in parts["block 2"]
 
 
 def test_an_invented_control_group_is_not_led_by_a_lookalike(compass):
@@ -149,3 +155,49 @@ def test_convergence_text_counts_failures_and_says_when_cv_could_not_run():
     assert "fewer than two blocks" in text
     ok = convergence_text(fits.assign(converged=True, cv_converged=True), blocks.assign(converged=True))
     assert ok == "optimiser: every fit converged"
+
+
+def test_probabilities_never_round_onto_zero_or_one():
+    # 0.99987 printed as 1.000 would claim certainty the selection does not give
+    status, _, words = verdict(_selection([0.99987, 0.00013], 0.0004), "model")
+    assert status == "clear" and "protected exceedance > 0.999;" in words and "omnibus risk < 0.001" in words
+    assert "1.00" not in words
+    assert p_words(0.0004) == "< 0.001" and p_words(0.0123) == "= 0.012" and p_words(0.47) == "= 0.47"
+    # neither side of the 0.05 line is rounded onto it
+    assert (p_words(0.0496), p_words(0.0504)) == ("= 0.0496", "= 0.0504")
+
+
+def test_console_lines_stay_under_one_hundred_characters_and_say_terms_in_full():
+    rest = lambda top: [top] + [(1 - top) / 9] * 9  # noqa: E731
+    blocks = pd.concat([_selection(rest(0.3), 0.2, group="a-rather-long-group-name", block=str(b))
+                        for b in range(1, 9)])
+    session = _selection(rest(0.3), 0.2, group="a-rather-long-group-name", n=40)
+    text = summary_text(_winners([f"count-{i}" for i in range(10)] * 4, ["strong"] * 40,
+                                 group="a-rather-long-group-name"), session, blocks, families=None)
+    lines = text.splitlines()
+    assert max(len(line) for line in lines) <= LINE_WIDTH < 100
+    assert "protected exceedance" in text and "omnibus risk" in text
+    assert "pxp" not in text and "BOR" not in text
+
+
+def test_bounds_are_counted_for_the_winning_fits_and_for_all_fits():
+    fits = pd.DataFrame(dict(participant=["p1", "p1", "p2", "p2"], model=["count-0", "count-1"] * 2,
+                             inv_temp=[1.0, 50.0, 2.0, 1.0], lapse=[0.5, 0.1, 0.5, 0.5],
+                             at_bound=["lapse", "inv_temp", "lapse", "lapse"]))
+    best = pd.DataFrame(dict(participant=["p1", "p2"], block="all", best_model=["count-1", "count-0"]))
+    lines = bound_text(fits, best).splitlines()
+    assert lines[0] == ("bounds, the 2 winning fits: inv_temp at its upper bound 50 in 1, lapse at its upper "
+                        "bound 0.5 in 1")
+    assert lines[1].startswith("bounds, all 4 fits: inv_temp at its upper bound 50 in 1, lapse at its upper bound "
+                               "0.5 in 3")
+    assert bound_text(fits.assign(at_bound="")) == "bounds, all 4 fits: none at a bound (at_bound in fits.csv)"
+
+
+def test_a_wrapped_line_never_breaks_a_comparison():
+    line = ("  families: clear winner: deep (protected exceedance > 0.999; omnibus risk < 0.001); block 2: "
+            "ahead, not clear: count-1 (protected exceedance 0.51 < 0.95; omnibus risk 0.01)")
+    for width in range(30, 100):
+        text = wrapped(line, width)
+        assert " ".join(text.split()) == " ".join(line.split())
+        assert "> 0.999" in text and "< 0.001" in text and "0.51 < 0.95" in text, width
+        assert all(len(row) <= width for row in text.splitlines() if " " in row.strip())

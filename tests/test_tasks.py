@@ -63,6 +63,23 @@ def test_entropy_rate_iid_is_shannon_entropy() -> None:
     assert task.entropy_rate().bits == pytest.approx(float(-(p * np.log2(p)).sum()), abs=1e-12)
 
 
+@pytest.mark.parametrize("p,q", [(0.2, 0.6), (0.1, 0.3), (0.5, 0.5)])
+def test_accuracy_ceiling_of_a_two_state_chain(p: float, q: float) -> None:
+    # Two-state Markov chain, switching with probability p from a and q from b: the stationary
+    # distribution is (q, p) / (p + q) (common practice; any Markov-chain text), and the Bayes rule
+    # guesses the likelier next symbol in each state, right with probability max(p, 1 - p) after a.
+    expected = (q * max(p, 1 - p) + p * max(q, 1 - q)) / (p + q)
+    assert two_state(p, q).accuracy_ceiling() == pytest.approx(expected, abs=1e-12)
+
+
+def test_accuracy_ceiling_is_nan_without_a_single_recurrent_class_and_chance_for_a_fair_source() -> None:
+    task = Task.from_dict({
+        "name": "absorbing", "symbols": ["a", "b"],
+        "contexts": [{"past": ["a"], "next": {"a": 1.0, "b": 0.0}}, {"past": ["b"], "next": {"a": 0.0, "b": 1.0}}]})
+    assert math.isnan(task.accuracy_ceiling())
+    assert load_task(TASKS / "compass-fair.toml").accuracy_ceiling() == pytest.approx(0.4)  # i.i.d.: the top p
+
+
 def test_entropy_rate_reports_each_recurrent_class() -> None:
     # a and b are absorbing: two recurrent classes, each deterministic (rate 0);
     # c is transient. No single rate exists, so bits is nan.

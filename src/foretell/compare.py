@@ -339,13 +339,13 @@ def _select_rows(tidy: pd.DataFrame, by: list[str], by_group: bool, families_spe
                 row["models"] = ";".join(spec[name])
             if result is None:
                 row.update(expected_freq=np.nan, exceedance=np.nan, protected_exceedance=np.nan,
-                           bor=np.nan, freq_concentration=np.nan)
+                           omnibus_risk=np.nan, freq_concentration=np.nan)
             else:
                 row.update(expected_freq=result.expected_freq[i], exceedance=result.exceedance[i],
-                           protected_exceedance=result.protected_exceedance[i], bor=result.bor,
+                           protected_exceedance=result.protected_exceedance[i], omnibus_risk=result.bor,
                            freq_concentration=result.alpha[i])
             rows.append(row)
-    columns = (["group", *by, label, "expected_freq", "exceedance", "protected_exceedance", "bor",
+    columns = (["group", *by, label, "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk",
                 "freq_concentration", "n_participants", "criterion", "method"]
                + (["models"] if families_spec is not None else []) + ["note"])
     return pd.DataFrame(rows, columns=columns)
@@ -382,9 +382,10 @@ def selection(fits: pd.DataFrame, *, criterion: str = "bic", by_group: bool = Tr
     pandas.DataFrame
         group (``all``, then each group), model, expected_freq (posterior
         mean frequency), exceedance (posterior probability of being more
-        frequent than every other), protected_exceedance ((1 - bor)
-        exceedance + bor / K), bor (Bayesian omnibus risk: the posterior
-        probability that all models are equally frequent), freq_concentration
+        frequent than every other), protected_exceedance ((1 - r)
+        exceedance + r / K, r the omnibus risk), omnibus_risk (Bayesian
+        omnibus risk: the posterior probability that all models are equally
+        frequent), freq_concentration
         (the posterior Dirichlet parameter, or alpha0 + the posterior mean
         count with Gibbs), n_participants (those with usable evidence for
         every model), criterion, method ("variational", "gibbs", or empty when

@@ -24,7 +24,11 @@ from foretell.params import CHOICE_PARAMS, LEARNER_PARAMS, PARAMS
 from foretell.tasks import Task
 from foretell.validation import check_count, check_seed, child_rng
 
-STATUSES = ("distinguished", "merged", "split-deeper", "unvisited")
+STATUS_KEYS = {"distinguished": "distinguished", "merged into shorter": "merged",
+               "split into longer": "split_deeper", "not visited": "unvisited"}
+"""Each status of a source context in a response tree (the words of the ``status`` column) -> the key
+of the columns that count it (``expected_<key>`` of the contexts table; the report's shares)."""
+STATUSES = tuple(STATUS_KEYS)
 
 DEFAULT_REPLICATES = 20
 """Replicate guess sequences simulated per participant from the winning model."""
@@ -32,8 +36,7 @@ DEFAULT_REPLICATES = 20
 BEYOND_LEVEL = 0.05
 """beyond_model is True when the observed status occurs in fewer than this share of the replicates."""
 
-_EXPECTED_SHARES = {"distinguished": "expected_distinguished", "merged": "expected_merged",
-                    "split-deeper": "expected_split_deeper"}
+_EXPECTED_SHARES = {status: f"expected_{key}" for status, key in STATUS_KEYS.items() if status != "not visited"}
 _REPORT_COLUMNS = ["participant", "group", "session", "block", "context", "depth", "n_obs",
                    "stop_prob", "leaf_prob", "in_map_tree", "in_source_tree", "model",
                    "n_replicates", "expected_leaf_prob", *_EXPECTED_SHARES.values()]
@@ -321,13 +324,13 @@ def _status(context: tuple[int, ...], visited: set[tuple[int, ...]],
             map_leaves: set[tuple[int, ...]]) -> tuple[str, tuple[int, ...] | None]:
     """Return a source context's status in a response tree and the MAP leaf covering it (None if split)."""
     if context not in visited:
-        return "unvisited", None
+        return "not visited", None
     if context in map_leaves:
         return "distinguished", context
     for d in range(len(context) - 1, -1, -1):  # nodes prepend older symbols: ancestors are suffixes
         if context[len(context) - d:] in map_leaves:
-            return "merged", context[len(context) - d:]
-    return "split-deeper", None
+            return "merged into shorter", context[len(context) - d:]
+    return "split into longer", None
 
 
 def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND_LEVEL) -> pd.DataFrame:
@@ -361,11 +364,12 @@ def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND
     Notes
     -----
     Status of a source context s in the MAP response tree: "distinguished"
-    (s is itself a leaf: the guesses depend on exactly that past), "merged"
-    (a shorter context, a suffix of s, is the leaf), "split-deeper" (the
-    response tree splits s further: the guesses depend on an older symbol
-    than the source does), "unvisited" (no guess was counted in s; also when
-    s is deeper than the report's depth). Recency alone splits trees deeper,
+    (s is itself a leaf: the guesses depend on exactly that past), "merged
+    into shorter" (a shorter context, a suffix of s, is the leaf), "split
+    into longer" (the response tree splits s further: the guesses depend on
+    an older symbol than the source does), "not visited" (no guess was
+    counted in s; also when s is deeper than the report's depth). Recency
+    alone splits trees deeper,
     so each status is set against the replicates of the participant's
     winning model, a posterior predictive check (Gelman, Meng & Stern, 1996)
     with the fitted parameters as a plug-in estimate (their uncertainty is
@@ -408,5 +412,5 @@ def context_agreement(report: pd.DataFrame, task: Task, *, level: float = BEYOND
     return out
 
 
-__all__ = ["BEYOND_LEVEL", "DEFAULT_REPLICATES", "STATUSES", "context_agreement", "context_report",
+__all__ = ["BEYOND_LEVEL", "DEFAULT_REPLICATES", "STATUSES", "STATUS_KEYS", "context_agreement", "context_report",
            "response_tree_depth"]

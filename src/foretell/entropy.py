@@ -78,22 +78,50 @@ def chain_entropy_rate(states: np.ndarray, trans: sparse.csr_matrix, h_state: np
     ----------
     Cover, T. M., & Thomas, J. A. (2006). Elements of Information Theory (2nd ed.). Wiley.
     """
+    classes = [RecurrentClass(pasts=tuple(tuple(int(v) for v in states[i]) for i in members), stationary=pi,
+                              entropy_rate_bits=float(pi @ h_state[members]))
+               for members, pi in _recurrent_classes(trans)]
+    bits = classes[0].entropy_rate_bits if len(classes) == 1 else math.nan
+    return EntropyRate(bits=bits, classes=tuple(classes))
+
+
+def stationary_mean(trans: sparse.csr_matrix, per_state: np.ndarray) -> float:
+    """Return the long-run mean sum_s pi(s) v(s) of a value of the states of an irreducible chain.
+
+    pi is the stationary distribution (as in :func:`chain_entropy_rate`);
+    ``nan`` when the chain has more than one recurrent class (the mean
+    then depends on the start).
+
+    Parameters
+    ----------
+    trans : scipy.sparse.csr_matrix, shape (n, n)
+        Transition probabilities between the states.
+    per_state : numpy.ndarray, shape (n,)
+        The value v(s) of each state.
+
+    Returns
+    -------
+    float
+    """
+    classes = _recurrent_classes(trans)
+    if len(classes) != 1:
+        return math.nan
+    members, pi = classes[0]
+    return float(pi @ np.asarray(per_state, dtype=float)[members])
+
+
+def _recurrent_classes(trans: sparse.csr_matrix) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Return (members, stationary distribution) of each recurrent class: a strong component no edge leaves."""
     n_comp, labels = connected_components(trans, directed=True, connection="strong")
     coo = trans.tocoo()
     leaving = np.zeros(n_comp, dtype=bool)
     cross = labels[coo.row] != labels[coo.col]
     leaving[labels[coo.row[cross]]] = True
-    classes = []
+    out = []
     for comp in np.flatnonzero(~leaving):
         members = np.flatnonzero(labels == comp)
-        pi = _stationary(trans[members][:, members])
-        classes.append(RecurrentClass(
-            pasts=tuple(tuple(int(v) for v in states[i]) for i in members),
-            stationary=pi,
-            entropy_rate_bits=float(pi @ h_state[members]),
-        ))
-    bits = classes[0].entropy_rate_bits if len(classes) == 1 else math.nan
-    return EntropyRate(bits=bits, classes=tuple(classes))
+        out.append((members, _stationary(trans[members][:, members])))
+    return out
 
 
 def entropy_bits(probs: np.ndarray) -> np.ndarray:

@@ -37,6 +37,17 @@ LABEL_COLUMNS = ("participant", "group", "session", "block", "model", "best_mode
                  "generating_model", "fitted_model", "note", "reasons", "reason", "at_bound", "message")
 """Columns read as text whatever they hold (participant "007" stays "007", block "all" and 3 alike)."""
 
+FORMER_NAMES = ((("bor",), {"bor": "omnibus_risk"}),
+                (("hdi_low",), {"hdi_low": "hdi95_low", "hdi_high": "hdi95_high"}),
+                (("d_elpd",), {"elpd": "elpd_loo", "se": "elpd_loo_se", "d_elpd": "elpd_diff",
+                               "dse": "elpd_diff_se", "weight": "stacking_weight"}),
+                (("parameter", "low"), {"low": "ci95_low", "high": "ci95_high"}),
+                (("ci_low",), {"ci_low": "ci95_low", "ci_high": "ci95_high"}))
+"""Columns renamed since earlier versions: (columns that together only the old tables hold, old name -> new)."""
+
+FORMER_STATUSES = {"merged": "merged into shorter", "split-deeper": "split into longer", "unvisited": "not visited"}
+"""Response-tree statuses (``status`` beside ``response_leaf``) renamed since earlier versions: old -> new."""
+
 FIT_TABLES = ("fits", "blocks", "winners", "selection", "selection_blocks", "families", "families_blocks",
               "contexts", "context_agreement", "excluded")
 """The tables of a ``foretell fit`` output that a FitResult is rebuilt from (trials.csv is optional)."""
@@ -222,7 +233,8 @@ class ResultFolder:
         """Return the table ``<name>.csv`` with :data:`LABEL_COLUMNS` as text, or None when absent.
 
         Floats are read back exactly as written (round trip); an empty cell
-        is a missing value.
+        is a missing value. A table written before a rename gets today's
+        names (:data:`FORMER_NAMES`, :data:`FORMER_STATUSES`).
 
         Raises
         ------
@@ -234,12 +246,13 @@ class ResultFolder:
             return None
         try:
             head = pd.read_csv(path, nrows=0).columns
-            return pd.read_csv(path, dtype={c: str for c in LABEL_COLUMNS if c in head},
-                               keep_default_na=False, na_values=[""])
+            table = pd.read_csv(path, dtype={c: str for c in LABEL_COLUMNS if c in head},
+                                keep_default_na=False, na_values=[""])
         except pd.errors.EmptyDataError:
             raise InputError("empty file: not a table foretell wrote", path=str(path)) from None
         except (pd.errors.ParserError, UnicodeDecodeError, ValueError) as exc:
             raise InputError(f"cannot read this table: {exc}", path=str(path)) from None
+        return _current_names(table)
 
     def require(self, name: str, what: str) -> pd.DataFrame:
         """Return the table ``<name>.csv``; InputError saying the folder is not ``what`` when it is absent."""
@@ -253,6 +266,16 @@ class ResultFolder:
         own = self.path / MANIFEST
         tables = [self.path / name for name in self.files if name.endswith((".csv", ".txt"))]
         return ([own] if own.is_file() else [self.path.parent / MANIFEST]) + tables
+
+
+def _current_names(table: pd.DataFrame) -> pd.DataFrame:
+    """Return ``table`` with the columns and statuses an earlier version wrote under today's names."""
+    for markers, renames in FORMER_NAMES:
+        if set(markers) <= set(table.columns):
+            table = table.rename(columns=renames)
+    if {"status", "response_leaf"} <= set(table.columns):
+        table["status"] = table["status"].replace(FORMER_STATUSES)
+    return table
 
 
 def _read_manifest(path: Path) -> dict[str, object]:

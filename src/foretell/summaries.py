@@ -6,6 +6,9 @@ own win is graded after Kass & Raftery (1995).
 
 from __future__ import annotations
 
+import math
+import re
+import textwrap
 from typing import Sequence
 
 import pandas as pd
@@ -23,6 +26,52 @@ BOR_MAX = 0.5
 
 STANDS_OUT_MARGIN = 0.1
 """A leader stands out only when its protected exceedance is at least 1/K plus this margin (and 1/2)."""
+
+HOLM_ALPHA = 0.05
+"""Family-wise level at which a Holm-corrected permutation p is counted as a difference (common practice)."""
+
+LINE_WIDTH = 99
+"""The longest console summary line: under 100 characters."""
+
+METRIC_WORDS = {"accuracy": "accuracy", "optimal_rate": "optimal-guess rate", "gain_bits": "gain over chance",
+                "inv_temp": "choice determinism", "median_rt": "median RT", "depth": "context depth",
+                "rt_surprise_slope": "RT cost of surprise"}
+"""Each learning-curve metric (:data:`foretell.curves.METRICS`) in a few plain words, for labels and lines."""
+
+
+def p_words(p: float) -> str:
+    """Return a p-value for reading: "< 0.001" below 0.001, else "= 0.012" (three decimals, two from 0.1).
+
+    Near :data:`HOLM_ALPHA` four decimals, so that no p is rounded onto or across it.
+
+    Parameters
+    ----------
+    p : float
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> p_words(0.0004), p_words(0.0123), p_words(0.47), p_words(0.0496), p_words(0.0504)
+    ('< 0.001', '= 0.012', '= 0.47', '= 0.0496', '= 0.0504')
+    """
+    if p < 0.001:
+        return "< 0.001"
+    digits = ".4f" if abs(p - HOLM_ALPHA) < 0.0005 else ".2f" if p >= 0.1 else ".3f"
+    return f"= {number(p, digits)}"
+
+
+def contrast_words(group: object, reference: object) -> str:
+    """Return a group contrast as "group − reference" (a minus sign between spaces: labels may hold hyphens).
+
+    Examples
+    --------
+    >>> contrast_words("sleep-restricted", "rested")
+    'sleep-restricted − rested'
+    """
+    return f"{group} − {reference}"
 
 _GRADED = ("positive", "strong", "very-strong")
 
@@ -62,12 +111,37 @@ def stands_out_at(k: int) -> float:
 
 
 def _against(value: float, bound: float) -> str:
-    """Return ``value`` with enough decimals (2 to 4) that it does not print as ``bound`` unless equal."""
+    """Return a probability with enough decimals (2 to 4) that it prints neither as ``bound``, 0 nor 1 unless equal.
+
+    Beyond that, "< 0.001" and "> 0.999": 0.99987 never reads as a misleading 1.000.
+    """
+    if 0 < value < 0.001:
+        return "< 0.001"
+    if 0.999 < value < 1:
+        return "> 0.999"
     for digits in (2, 3, 4):
         text = number(value, f".{digits}f")
-        if value == bound or text != number(bound, f".{digits}f"):
+        if (value == bound or text != number(bound, f".{digits}f")) and (
+                value in (0, 1) or float(text) not in (0, 1)):
             return text
     return text
+
+
+def probability_words(value: float) -> str:
+    """Return a probability for a table: two to four decimals, "< 0.001" or "> 0.999", never 0 or 1 unless exact.
+
+    Examples
+    --------
+    >>> probability_words(0.99987), probability_words(0.25), probability_words(float("nan"))
+    ('> 0.999', '0.25', '')
+    """
+    return "" if pd.isna(value) else _against(float(value), math.nan)
+
+
+def _versus(value: float, side: str, bound: float) -> str:
+    """Return "0.84 < 0.95": a probability beside the bar it is judged against ("> 0.999" says it alone)."""
+    text = _against(value, bound)
+    return text if text[0] in "<>" else f"{text} {side} {number(bound, '.2f')}"
 
 
 def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
@@ -102,7 +176,7 @@ def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
         return "none", None, f"no {label} selection ({note or 'no usable evidence'})"
     k = len(ok)
     top = ok.loc[ok["protected_exceedance"].idxmax()]
-    pxp, bor, leader = float(top["protected_exceedance"]), float(top["bor"]), str(top[label])
+    pxp, bor, leader = float(top["protected_exceedance"]), float(top["omnibus_risk"]), str(top[label])
     if k == 1:
         return "level", None, f"only one {label} compared ({leader})"
     risk = f"omnibus risk {_against(bor, BOR_MAX)}"
@@ -112,41 +186,28 @@ def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
     if pxp < bar:
         compared = plural(k, label, "families" if label == "family" else None)
         return "level", None, (f"no {label} stands out (highest protected exceedance "
-                               f"{_against(pxp, bar)} < {number(bar, '.2f')} with {compared}; {risk})")
+                               f"{_versus(pxp, '<', bar)} with {compared}; {risk})")
     status, side = ("clear", ">=") if pxp >= CLEAR_PXP else ("ahead", "<")
     return status, leader, (f"{_LEADER_WORDS[status]}: {leader} (protected exceedance "
-                            f"{_against(pxp, CLEAR_PXP)} {side} {number(CLEAR_PXP, '.2f')}; {risk})")
+                            f"{_versus(pxp, side, CLEAR_PXP)}; {risk})")
 
 
-def _block_line(table: pd.DataFrame, group: str, label: str) -> str | None:
-    """Return "block 1: ahead, not clear: count-0 (pxp 0.81 < 0.95, BOR 0.10); ..." for one group.
+def _block_lines(table: pd.DataFrame, group: str, label: str) -> list[str]:
+    """Return one line per block: "block 1: ahead, not clear: count-0 (protected exceedance 0.81 < 0.95; ...)".
 
     Each block is judged by :func:`verdict`, the rule of the whole session,
-    and worded with its words; None without blocks.
+    and worded with its words; none without blocks.
     """
     mine = table[table["group"] == group]
     keys = [k for k in ("session", "block") if k in mine.columns
             and (k == "block" or mine[k].nunique() > 1)]
-    if mine.empty:
-        return None
-    parts = []
-    for labels, unit in mine.groupby(keys, sort=False):
+    out = []
+    for labels, unit in (mine.groupby(keys, sort=False) if len(mine) else ()):
         labels = labels if isinstance(labels, tuple) else (labels,)
         where = " ".join(f"{k} {block_label(v)}" for k, v in zip(keys, labels))
-        status, leader, _ = verdict(unit, label)
-        ok = unit.dropna(subset=["protected_exceedance"])
-        if status == "none":
-            parts.append(f"{where}: not computed")
-            continue
-        pxp = float(ok["protected_exceedance"].max())
-        bor = number(float(ok["bor"].iloc[0]), '.2f')
-        if leader is None:
-            parts.append(f"{where}: none stands out (top pxp {number(pxp, '.2f')}, BOR {bor})")
-        else:
-            side = ">=" if status == "clear" else "<"
-            parts.append(f"{where}: {_LEADER_WORDS[status]}: {leader} "
-                         f"(pxp {_against(pxp, CLEAR_PXP)} {side} {number(CLEAR_PXP, '.2f')}, BOR {bor})")
-    return "; ".join(parts)
+        status, _, words = verdict(unit, label)
+        out.append(f"{where}: {'not computed' if status == 'none' else words}")
+    return out
 
 
 def _own_winners(winners: pd.DataFrame, group: str) -> str | None:
@@ -183,10 +244,10 @@ def summary_text(winners: pd.DataFrame, selection: pd.DataFrame,
     str
         The criterion (BIC or CV) and the look-alike models left out; then
         per group the model and family verdicts (:func:`verdict`), each
-        block's verdict by the same rule and in the same words, with its
-        protected exceedance (pxp) and omnibus risk (BOR), and the
-        participants' own winners with how many are at least "positive"
-        evidence (Kass & Raftery, 1995). Numbers never print as "-0.00".
+        block's verdict by the same rule and in the same words (one line
+        per block, terms spelled out), and the participants' own winners with how many are at least "positive"
+        evidence (Kass & Raftery, 1995). Numbers never print as "-0.00";
+        lines are at most :data:`LINE_WIDTH` characters (:func:`wrapped`).
     """
     criterion = selection["criterion"].dropna()
     words = _CRITERION_WORDS.get(criterion.iloc[0], criterion.iloc[0]) if len(criterion) else "no criterion"
@@ -205,13 +266,39 @@ def summary_text(winners: pd.DataFrame, selection: pd.DataFrame,
             fam = families[families["group"] == group]
             if len(fam):
                 lines.append(f"  families: {verdict(fam, 'family')[2]}")
-        if selection_blocks is not None and (line := _block_line(selection_blocks, group, "model")):
-            lines.append(f"  by block: {line}")
-        if families_blocks is not None and (line := _block_line(families_blocks, group, "family")):
-            lines.append(f"  families by block: {line}")
+        for what, blocks, label in (("by block", selection_blocks, "model"),
+                                     ("families by block", families_blocks, "family")):
+            if blocks is not None and (each := _block_lines(blocks, group, label)):
+                lines += [f"  {what}:", *(f"    {line}" for line in each)]
         if (line := _own_winners(winners, group)) is not None:
             lines.append(line)
-    return "\n".join(lines)
+    return "\n".join(wrapped(line) for line in lines)
+
+
+_COMPARISON = re.compile(r"\S+ (?:<|>|<=|>=|≤|≥) \S+|(?<![\w)]) ?(?:<|>) \S+")
+"""A comparison ("0.51 < 0.95", "> 0.999") that a wrapped line never breaks."""
+
+
+def wrapped(line: str, width: int | None = LINE_WIDTH) -> str:
+    """Return ``line`` broken into lines of at most ``width`` characters, continuations indented two more.
+
+    Parameters
+    ----------
+    line : str
+        One logical line; its leading spaces are kept on the first line.
+    width : int or None, default :data:`LINE_WIDTH`
+        None: ``line`` as it is.
+
+    Returns
+    -------
+    str
+    """
+    if width is None:
+        return line
+    indent = " " * (len(line) - len(line.lstrip(" ")))
+    glued = _COMPARISON.sub(lambda m: m.group(0).replace(" ", "\u00a0"), line.strip())  # "0.51 < 0.95" stays whole
+    return "\n".join(textwrap.wrap(glued, width, initial_indent=indent, subsequent_indent=indent + "  ",
+                                   break_on_hyphens=False, break_long_words=False)).replace("\u00a0", " ") or line
 
 
 def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
@@ -243,22 +330,42 @@ def convergence_text(fits: pd.DataFrame, blocks: pd.DataFrame) -> str:
     return "; ".join([line, *notes])
 
 
-def bound_text(fits: pd.DataFrame) -> str:
-    """Return one line counting fits that ended at a parameter bound, per parameter and side.
+def bound_text(fits: pd.DataFrame, winners: pd.DataFrame | None = None, width: int | None = LINE_WIDTH) -> str:
+    """Return the lines counting fits that ended at a parameter bound: the winning fits first, then all fits.
 
     Parameters
     ----------
     fits : pandas.DataFrame
         The fits table (``at_bound`` names the parameters at a bound).
+    winners : pandas.DataFrame, optional
+        :func:`foretell.compare.winners`: each participant's whole-session
+        best model marks the winning fits (the ones the comparisons and
+        curves read). Without it, all fits only.
+    width : int or None, default :data:`LINE_WIDTH`
+        The longest line (None: one line per statement, for the report).
 
     Returns
     -------
     str
-        The side is the bound the value is nearer to
+        Per parameter and side, the bound the value is nearer to
         (:data:`foretell.params.PARAMS`). An upper inv_temp bound means
         near-deterministic guessing, a lower lapse bound no lapses: both are
         limits of what the data can tell, not estimates.
     """
+    lines = []
+    if winners is not None and {"best_model", "block"} <= set(winners.columns):
+        best = winners[(winners["block"] == ALL) & winners["best_model"].notna()]
+        keys = pd.MultiIndex.from_frame(best[["participant", "best_model"]].astype(str))
+        won = fits[pd.MultiIndex.from_frame(fits[["participant", "model"]].astype(str)).isin(keys)]
+        lines.append(f"bounds, the {plural(len(won), 'winning fit')}: {_bound_counts(won)}")
+    lines.append(f"bounds, all {plural(len(fits), 'fit')}: {_bound_counts(fits)} (at_bound in fits.csv)")
+    if not fits.get("at_bound", pd.Series(dtype=object)).fillna("").astype(str).eq("").all():
+        lines.append("a value at a bound is a limit of what the data can tell, not an estimate")
+    return "\n".join(wrapped(line, width) for line in lines)
+
+
+def _bound_counts(fits: pd.DataFrame) -> str:
+    """Return "lapse at its upper bound 0.5 in 6, inv_temp at its upper bound 50 in 2" (or "none at a bound")."""
     at = fits["at_bound"].fillna("").astype(str) if "at_bound" in fits.columns else pd.Series([], dtype=str)
     counts: dict[tuple[str, str], int] = {}
     for i in at.index[at != ""]:
@@ -268,8 +375,6 @@ def bound_text(fits: pd.DataFrame) -> str:
             side = "upper" if abs(value - p.high) < abs(value - p.low) else "lower"
             counts[(name, side)] = counts.get((name, side), 0) + 1
     if not counts:
-        return "bounds: no fitted parameter ended at a bound"
-    parts = [f"{name} at its {side} bound {PARAMS[name].high if side == 'upper' else PARAMS[name].low:g} "
-             f"in {plural(n, 'fit')}" for (name, side), n in sorted(counts.items())]
-    return (f"bounds (of {plural(len(fits), 'fit')}; at_bound in fits.csv): " + ", ".join(parts)
-            + "; read those values as limits, not estimates")
+        return "none at a bound"
+    return ", ".join(f"{name} at its {side} bound {PARAMS[name].high if side == 'upper' else PARAMS[name].low:g} "
+                     f"in {n}" for (name, side), n in sorted(counts.items()))

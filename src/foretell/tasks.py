@@ -12,7 +12,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Sequence
 import numpy as np
 from scipy import sparse
 
-from .entropy import EntropyRate, chain_entropy_rate, entropy_bits
+from .entropy import EntropyRate, chain_entropy_rate, entropy_bits, stationary_mean
 from .errors import TaskError, UsageError
 from .labels import context_label
 from .taskfile import RESPONSES, TaskFields, check_task_data, read_task_file
@@ -391,6 +391,22 @@ class Task:
         self._require_source("the entropy rate")
         states, trans = self._past_chain()
         return chain_entropy_rate(states, trans, entropy_bits(self.next_probs)[self._state_contexts()])
+
+    def accuracy_ceiling(self) -> float:
+        """Return the long-run share of correct guesses of an observer who knows the source.
+
+        sum_s pi(s) max_a P(a | s) over pasts s of maximal depth, pi their
+        stationary distribution (:func:`foretell.entropy.stationary_mean`):
+        always guessing the most likely next symbol (the Bayes decision
+        rule). ``nan`` when the chain has more than one recurrent class.
+
+        Returns
+        -------
+        float
+        """
+        self._require_source("the accuracy ceiling")
+        _, trans = self._past_chain()
+        return stationary_mean(trans, self.next_probs.max(axis=1)[self._state_contexts()])
 
     def to_frame(self) -> "pd.DataFrame":
         """Return the tree as a tidy table: one row per context, columns context, depth, p_<symbol>.

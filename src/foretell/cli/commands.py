@@ -6,23 +6,43 @@ import argparse
 import contextlib
 import re
 import sys
+import textwrap
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import replace
 from pathlib import Path
 
 from ..errors import InputError, UsageError, printable
+from ..text import plural
 from .eeg import cmd_eeg
 from .lab import (check_derivatives, cmd_profile, cmd_sequence, print_mapping, profile_inputs,
                   write_derivatives)
+from .names import model_ids, named_task
 
 _CLI_ADVICE = re.compile(r"\b\w+=(?:\{[^{}]*\}|'[^']*'|\"[^\"]*\"|[^\s(){}]+)? \(CLI: ([^)]*)\)")
 """Python advice with its command-line twin: ``keyword=value (CLI: --option ...)``."""
+WIDTH = 99
+"""The longest console line of a note (errors stay one line per problem, whatever their length)."""
+PROGRESS = True
+"""The steps' progress on the command line: a bar on a terminal, plain lines otherwise (:mod:`foretell.progress`)."""
 
 
 def say(line: str) -> None:
     """Print one message line to stderr, in the command line's words (see :func:`cli_words`)."""
     print(printable(cli_words(line)), file=sys.stderr)
+
+
+def say_notes(notes: Sequence[str]) -> None:
+    """Print each note as ``note: ...``, wrapped to lines of at most :data:`WIDTH` characters."""
+    for note in notes:
+        for line in textwrap.wrap(cli_words(f"note: {note}"), WIDTH, subsequent_indent="  ", break_on_hyphens=False):
+            say(line)
+
+
+def say_problems(err: InputError) -> None:
+    """Print one ``error:`` line per problem of ``err`` (file, line and column first)."""
+    for problem in err.problems:
+        say(f"error: {problem}")
 
 
 def cli_words(text: str) -> str:
@@ -60,10 +80,6 @@ def _task_inputs(task) -> list[str]:
     return [task.path] if task.path else []
 
 
-def _progress() -> bool:
-    return sys.stderr.isatty()
-
-
 def _load(args: argparse.Namespace, measures: Sequence[str] = (), check_task=None):
     """Return (task, validated log) after printing the log's warnings once.
 
@@ -89,11 +105,8 @@ def _load(args: argparse.Namespace, measures: Sequence[str] = (), check_task=Non
 
 def _task(name: str):
     """Return the task named on the command line after printing its notes (e.g. which file was used)."""
-    from ..tasks import load_task
-
-    task = load_task(name)
-    for note in task.notes:
-        say(f"note: {note}")
+    task = named_task(name)
+    say_notes(task.notes)
     return task
 
 
@@ -130,31 +143,41 @@ def _run(args: argparse.Namespace, step: Callable[[], object], *, task, log=None
         path = write(args.out, result, inputs=[*inputs, *folders], force=args.force,
                      manifest=record | fingerprints(task, log))
         write_derivatives(args, result, inputs=[*inputs, *folders], manifest=record | fingerprints(task, log))
-    for line in result.notes:
-        say(f"note: {line}")
+    say_notes(result.notes)
     say(f"results written to {path}/")
     return result
 
 
 def cmd_task(args: argparse.Namespace) -> int:
     """``foretell task``: describe a task."""
-    from ..tasks import load_task
-
-    print(load_task(args.task).describe())
+    print(_task(args.task).describe())
     return 0
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    """``foretell check``: validate a log and summarise it."""
+    """``foretell check``: validate a log and summarise it; the last line is the verdict."""
     from ..logs import log_summary, unscorable
     from ..models import default_warmup
 
-    task, log = _load(args)
+    try:
+        task, log = _load(args)
+    except InputError as err:
+        say_problems(err)
+        print(f"verdict: {plural(len(err.problems), 'problem')}, fix them first")
+        return 1
     print(log_summary(log).to_string(index=False, na_rep=""))
     print(str(log.screen))
     print_mapping(log)
-    for row in unscorable(log, default_warmup(task)).itertuples(index=False):
-        say(f"warning: participant {row.participant} has nothing to fit ({row.reason}); fit leaves them out")
+    empty = unscorable(log, default_warmup(task))
+    for row in empty.itertuples(index=False):
+        say(f"warning: participant {row.participant} left out of the fits: {row.reason}")
+    n = log.frame["participant"].nunique()
+    if len(empty) == n:
+        print("verdict: nothing to analyse: no participant has a guess to fit after the warm-up")
+        return 0
+    left = f"; {len(empty)} with nothing to fit, left out" if len(empty) else ""
+    print(f"verdict: the log is ready to analyse ({plural(n, 'participant')}, "
+          f"{plural(len(log.frame), 'trial')}{left})")
     return 0
 
 
@@ -165,9 +188,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     task, log = _load(args, check_task=guesses.check_guess_design)
 
     def step():
-        return guesses.fit(log, task, models=csv_list(args.models), free=tuple(csv_list(args.free) or ()),
+        return guesses.fit(log, task, models=model_ids(args.models, task), free=tuple(csv_list(args.free) or ()),
                            seed=args.seed, n_starts=args.starts, n_jobs=args.jobs, trials=args.trials,
-                           progress=_progress())
+                           progress=PROGRESS)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)])
     print(result.summary)
@@ -185,6 +208,7 @@ def _fit_folder(args: argparse.Namespace, option: str):
 def cmd_rt(args: argparse.Namespace) -> int:
     """``foretell rt``: models of reaction times (or another per-trial measure)."""
     from ..folders import as_fit
+    from ..steps.measure_calls import ranking_text
     from ..steps.measures import analyze_rt
 
     task, log = _load(args, measures=[] if args.measure == "rt" else [args.measure])
@@ -192,13 +216,14 @@ def cmd_rt(args: argparse.Namespace) -> int:
     fitted = as_fit(reads[0], log, task) if reads else None
 
     def step():
-        return analyze_rt(log, task, models=csv_list(args.models), fit=fitted, measure=args.measure,
+        return analyze_rt(log, task, models=model_ids(args.models, task), fit=fitted, measure=args.measure,
                           locked=args.locked, bayes=args.bayes, draws=args.draws, chains=args.chains, tune=args.tune,
-                          seed=args.seed, n_jobs=args.jobs, refits=args.refits, progress=_progress(),
-                          log_transform=True if args.measure == "rt" else args.log_transform)
+                          seed=args.seed, n_jobs=args.jobs, refits=args.refits, loo=args.loo, progress=PROGRESS,
+                          log_transform=True if args.measure == "rt" else args.log_transform,
+                          baseline=args.baseline, bootstrap=args.bootstrap)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)], reads=reads)
-    print(result.compare.to_string(index=False))
+    print(ranking_text(result.compare))
     return 0
 
 
@@ -214,11 +239,11 @@ def cmd_groups(args: argparse.Namespace) -> int:
         from ..steps.guesses import fit
 
         fitted = (as_fit(reads[0], log, task) if reads else
-                  fit(log, task, models=csv_list(args.models), seed=args.seed, n_jobs=args.jobs,
-                      progress=_progress()))
+                  fit(log, task, models=model_ids(args.models, task), seed=args.seed, n_jobs=args.jobs,
+                      progress=PROGRESS))
         return compare_groups(log, task, fit=fitted, reference=args.reference, draws=args.draws,
                               chains=args.chains, tune=args.tune, seed=args.seed, bayes=args.bayes,
-                              n_jobs=args.jobs, progress=_progress())
+                              n_jobs=args.jobs, progress=PROGRESS)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)], reads=reads)
     print(result.texts().get("summary.txt", ""), end="")
@@ -235,7 +260,7 @@ def cmd_events(args: argparse.Namespace) -> int:
     fitted = as_fit(reads[0], log, task) if reads else None
 
     def step():
-        return export_events(log, task, fit=fitted, models=csv_list(args.models))
+        return export_events(log, task, fit=fitted, models=model_ids(args.models, task))
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)], reads=reads)
     n_files = sum(name.endswith("_events.tsv") for name in result.blobs())
@@ -267,10 +292,10 @@ def cmd_recover(args: argparse.Namespace) -> int:
 
     def step():
         try:
-            return recover(task, models=csv_list(args.models), n_participants=args.participants,
+            return recover(task, models=model_ids(args.models, task), n_participants=args.participants,
                            trial_counts=trial_counts, fit=fitted, seed=args.seed, n_jobs=args.jobs,
                            rt=args.rt, rt_datasets=args.rt_datasets, rt_effect=args.rt_effect / 1000,
-                           progress=_progress())
+                           progress=PROGRESS)
         except InputError as err:  # problems of the reused fits: name their file
             where = str(reads[0].path / "fits.csv") if reads else None
             raise InputError([replace(p, path=p.path or where) for p in err.problems]) from None
@@ -283,9 +308,11 @@ def cmd_recover(args: argparse.Namespace) -> int:
 
 
 def _report_run(result, out: str | Path) -> None:
-    """Print the notes, the fit summary and where the report is."""
-    for line in result.notes:
-        say(f"note: {line}")
+    """Print the notes, the findings, the fit summary and where the report is."""
+    from ..findings import findings_text
+
+    say_notes(result.notes)
+    print(findings_text(result))
     if result.fit is not None:
         print(result.fit.summary)
     if result.report is not None:
@@ -306,12 +333,12 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     record = provenance(args.command, _options(args),
                         [*inputs, *(path for folder in reads for path in folder.input_files())])
     with _backend(args):
-        result = analyze(log, task, out=args.out, models=csv_list(args.models),
-                         rt_models=csv_list(args.rt_models), free=csv_list(args.free) or (),
+        result = analyze(log, task, out=args.out, models=model_ids(args.models, task),
+                         rt_models=model_ids(args.rt_models, task), free=csv_list(args.free) or (),
                          skip=csv_list(args.skip) or (), recovery=reads[0] if reads else None, seed=args.seed,
                          n_jobs=args.jobs, bayes=args.bayes, draws=args.draws, chains=args.chains,
-                         tune=args.tune, refits=args.refits, trials=args.trials, force=args.force,
-                         epochs=args.epochs, locked=args.locked, inputs=inputs, manifest=record, progress=_progress())
+                         tune=args.tune, refits=args.refits, loo=args.loo, trials=args.trials, force=args.force,
+                         epochs=args.epochs, locked=args.locked, inputs=inputs, manifest=record, progress=PROGRESS)
     write_derivatives(args, result, inputs=inputs, manifest=record)
     _report_run(result, args.out)
     return 0
@@ -328,10 +355,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     skip = csv_list(args.skip) or ()
     say(demo_plan(task, skip))
     log = validate_log(demo_log(), task, source="demo_log.csv")
-    result = analyze(log, task, out=args.out, rt_models=DEMO_RT_MODELS, skip=skip, n_jobs=args.jobs,
+    result = analyze(log, task, out=args.out, rt_models=DEMO_RT_MODELS, skip=skip, seed=args.seed, n_jobs=args.jobs,
                      draws=DEMO_DRAWS, tune=DEMO_DRAWS, chains=DEMO_CHAINS, provisional=True, force=args.force,
                      trials=args.trials, manifest=provenance(args.command, _options(args), []),
-                     progress=_progress())
+                     progress=PROGRESS)
     _report_run(result, args.out)
     if result.fit is not None:
         print()

@@ -64,8 +64,9 @@ def cmd_eeg(args: argparse.Namespace) -> int:
     from ..folders import as_fit
     from ..labels import ALL
     from ..steps.eeg import CLUSTER_P, analyze_eeg
-    from .commands import _fit_folder, _load, _run, _task_inputs, csv_list, say
+    from .commands import PROGRESS, _fit_folder, _load, _run, _task_inputs, csv_list, say
     from .lab import profile_inputs
+    from .names import model_ids
 
     task, log = _load(args)
     reads = _fit_folder(args, "fits")
@@ -73,11 +74,11 @@ def cmd_eeg(args: argparse.Namespace) -> int:
     window = _window(args.window)
 
     def step():
-        return analyze_eeg(log, task, epochs=args.epochs, fit=fitted, models=csv_list(args.models),
+        return analyze_eeg(log, task, epochs=args.epochs, fit=fitted, models=model_ids(args.models, task),
                            seed=args.seed, n_jobs=args.jobs, locked=args.locked,
                            regressors=csv_list(args.regressors), window=window,
                            channels=csv_list(args.channels), reference=args.reference,
-                           n_permutations=args.n_permutations, pick=args.pick)
+                           n_permutations=args.n_permutations, pick=args.pick, progress=PROGRESS)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task),
                                                            *profile_inputs(args)], reads=reads)

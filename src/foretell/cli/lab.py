@@ -75,10 +75,9 @@ def sequence_parser(command) -> None:
 def cmd_profile(args: argparse.Namespace) -> int:
     """``foretell profile``: print (or write) a profile suggested from one file."""
     from ..profiletemplate import suggest_profile
-    from ..tasks import load_task
-    from .commands import say
+    from .commands import _task, say
 
-    task = load_task(args.task) if args.task else None
+    task = _task(args.task) if args.task else None
     sheet = int(args.sheet) if args.sheet is not None and args.sheet.isdigit() else args.sheet
     text = suggest_profile(args.source, task, sheet=sheet)
     if args.out is None:
@@ -92,10 +91,9 @@ def cmd_profile(args: argparse.Namespace) -> int:
 def cmd_sequence(args: argparse.Namespace) -> int:
     """``foretell sequence``: the stimulus sequences of an experiment."""
     from ..steps.sequence import make_sequences
-    from ..tasks import load_task
-    from .commands import _run, _task_inputs, say
+    from .commands import _run, _task, _task_inputs, say
 
-    task = load_task(args.task)
+    task = _task(args.task)
 
     def step():
         return make_sequences(task, n_participants=args.participants, n_blocks=args.blocks,

@@ -45,7 +45,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         interrupted (Ctrl-C) and 143 when terminated (SIGTERM). Parse errors
         and ``--help`` exit through ``SystemExit`` as argparse does.
     """
-    from .commands import COMMANDS, say
+    from .commands import COMMANDS, say, say_problems
     from .parser import build_parser
 
     args = build_parser().parse_args(_spelled(sys.argv[1:] if argv is None else argv))
@@ -56,8 +56,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return COMMANDS[args.command](args)
     except InputError as err:
-        for problem in err.problems:
-            say(f"error: {problem}")
+        say_problems(err)
         return 1
     except UsageError as err:
         say(f"foretell {args.command}: {err}")

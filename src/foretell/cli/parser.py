@@ -45,6 +45,21 @@ def count(low: int) -> Callable[[str], int]:
     return parse
 
 
+class _Formatter(argparse.RawDescriptionHelpFormatter):
+    """Keeps the epilog's line breaks, and adds an option's default to its help when the help does not say it.
+
+    No default is added for options that are off or empty unless given
+    (None, False, "", []).
+    """
+
+    def _get_help_string(self, action: argparse.Action) -> str:
+        text = action.help or ""
+        unset = action.default is None or action.default is False or action.default in ("", [])
+        if not action.option_strings or unset or action.default is argparse.SUPPRESS or "default" in text:
+            return text
+        return f"{text} (default: %(default)s)"
+
+
 def _log_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("log", help="response log, one row per trial: a file (CSV, TSV, JSON, spreadsheet, Parquet), "
                                "a folder or a quoted glob of files, or a BIDS dataset")
@@ -102,8 +117,11 @@ def _sampling_options(p: argparse.ArgumentParser, *, seed_help: str, jobs_help: 
 
 
 def _refits(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--loo", action="store_true",
+                   help="compare the hierarchical RT models by PSIS-LOO over participant x block units, with "
+                        "exact refits where Pareto k is above 0.7 (default: no LOO comparison)")
     p.add_argument("--refits", type=count(0),
-                   help="most exact leave-one-out refits per RT model, for the participant x block "
+                   help="with --loo, most exact leave-one-out refits per RT model, for the participant x block "
                         "units whose PSIS Pareto k is above 0.7 (default 10; each is one more "
                         "MCMC run)")
 
@@ -137,10 +155,13 @@ Adder = Callable[..., argparse.ArgumentParser]
 def _demo(command: Adder) -> None:
     p = command("demo", "run the whole analysis on the embedded demo study and write its report",
                 "foretell demo", "foretell demo --out demo-results/ --jobs 2",
-                "foretell demo --skip rt,groups       # the fits and comparisons only")
+                "foretell demo --skip rt,groups       # the fits and comparisons only",
+                "foretell demo --seed 3               # the same data, other random starts and draws")
     p.add_argument("--out", default=DEMO_OUT, help=f"folder for the results (default ./{DEMO_OUT})")
     _jobs_option(p, "participants fitted and chains sampled")
     p.add_argument("--skip", default="", help=SKIPPABLE)
+    p.add_argument("--seed", type=count(0), default=0,
+                   help="seed of every random step of the analysis (>= 0); the demo data stay the same")
     _trials_option(p)
     _force(p)
 
@@ -217,9 +238,10 @@ def _rt(command: Adder) -> None:
                 "foretell rt study.csv --task lantern-relay --out rt/ --fits results/ --no-bayes",
                 "foretell rt eeg.csv --task lantern-relay --out p3/ --measure p3_amp --locked reveal",
                 more="Per participant and learner model: log RT on the prediction's entropy (guess\n"
-                     "designs) or the stimulus's surprise (reaction designs) plus a block trend, with\n"
-                     "Newey-West errors; then one hierarchical Bayesian model per learner model,\n"
-                     "compared by PSIS-LOO only when every model passes the diagnostics gate.\n")
+                     "designs) or the stimulus's surprise (reaction designs) plus a time-on-task\n"
+                     "baseline; the baseline alone (model 'none') joins every comparison, and a learner\n"
+                     "is called only when the random-effects selection puts it ahead of the baseline\n"
+                     "and the other learners. Then hierarchical Bayesian models (--bayes).\n")
     _log_options(p)
     _screen_options(p)
     p.add_argument("--out", required=True, help="folder for the tables and posteriors")
@@ -233,6 +255,13 @@ def _rt(command: Adder) -> None:
                         "stimulus's surprise (default: guess in guess designs, reveal in reaction ones)")
     p.add_argument("--log", action="store_true", dest="log_transform",
                    help="model the log of a measure other than rt (rt is always modelled on the log scale)")
+    p.add_argument("--baseline", metavar="TERMS",
+                   help="comma-separated time-on-task terms of every model: blocks, trial_spline, log_trial, "
+                        "block_trend, prev_correct; '' for an intercept alone (default: blocks,trial_spline,"
+                        "prev_correct in guess designs, blocks,trial_spline in reaction designs)")
+    p.add_argument("--bootstrap", type=count(0), metavar="N",
+                   help="moving-block resamples behind the slope interval of a leak chosen on the measure "
+                        "(reaction designs; 0: no interval; default 200)")
     _sampling_options(p, seed_help="seed of the samplers (>= 0)",
                       jobs_help="participants computed and chains sampled")
     _refits(p)
@@ -326,7 +355,7 @@ def build_parser() -> argparse.ArgumentParser:
         options and examples); the chosen one is ``args.command``.
     """
     parser = argparse.ArgumentParser(
-        prog="foretell", formatter_class=argparse.RawDescriptionHelpFormatter,
+        prog="foretell", formatter_class=_Formatter,
         description="Analyse guess-the-next-symbol experiments: which past context explains "
                     "each participant's guesses, block by block.",
         epilog=EXAMPLES)
@@ -335,7 +364,8 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
 
     def command(name: str, help_: str, *examples: str, more: str = "") -> argparse.ArgumentParser:
-        return sub.add_parser(name, help=help_, formatter_class=argparse.RawDescriptionHelpFormatter,
+        sentence = help_[:1].upper() + help_[1:] + ("" if help_.endswith(("?", ".")) else ".")
+        return sub.add_parser(name, help=help_, description=sentence, formatter_class=_Formatter,
                               epilog=more + "examples:\n" + "".join(f"  {e}\n" for e in examples))
 
     for add in COMMANDS:

@@ -2,14 +2,12 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
-from tqdm import tqdm
 
 from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import LogError, UsageError
@@ -20,6 +18,7 @@ from foretell.fitting.trials import Participant, prepare
 from foretell.logs import ValidatedLog, unscorable
 from foretell.models import ModelSpec, model_specs
 from foretell.params import PARAMS
+from foretell.progress import stage
 from foretell.tasks import Task
 from foretell.validation import check_count, check_n_jobs, check_seed, child_rng
 
@@ -157,7 +156,8 @@ def fit_participants(log: ValidatedLog, task: Task, models: Sequence[str | Model
     n_jobs : int, default 1
         joblib workers (-1: all cores); the tables do not depend on it.
     progress : bool, optional
-        Draw a bar on stderr (None: when stderr is a terminal).
+        Participants fitted, on stderr (:func:`foretell.progress.shown`: True a bar on a
+        terminal and plain lines otherwise; None only on a terminal).
 
     Returns
     -------
@@ -224,21 +224,19 @@ def fit_participants(log: ValidatedLog, task: Task, models: Sequence[str | Model
 def _fit_batches(parts: Sequence[Participant], specs: Sequence[ModelSpec], options: FitOptions,
                  symbols: Sequence[str], n_jobs: int, progress: bool | None
                  ) -> tuple[list[dict], list[dict], Predictions]:
-    """Return every batch's fit rows and block rows, and the filled per-trial store, with a progress bar."""
+    """Return every batch's fit rows and block rows, and the filled per-trial store, with its progress."""
     workers = job_count(n_jobs)
     chunks = [parts[a:b] for a, b in batches([len(p.guess) for p in parts], workers, _CHUNK_TRIALS)]
-    show = sys.stderr.isatty() if progress is None else bool(progress)
     jobs = (delayed(_fit_chunk)(chunk, specs, options, symbols) for chunk in chunks)
     fit_rows, block_rows, predictions = [], [], Predictions(parts, specs, symbols)
     with workers_stopped(n_jobs):
         with Parallel(n_jobs=workers, return_as="generator") as parallel, \
-                tqdm(total=len(parts), disable=not show, unit="participant", desc="fitting",
-                     file=sys.stderr) as bar:
+                stage("fit", "participants fitted", len(parts), progress) as bar:
             start = 0
             for chunk, (f, b, values) in zip(chunks, parallel(jobs)):
                 fit_rows += f
                 block_rows += b
                 predictions.add(start, values)  # copied in as it comes (peak memory)
                 start += len(chunk)
-                bar.update(len(chunk))
+                bar.advance(len(chunk))
     return fit_rows, block_rows, predictions

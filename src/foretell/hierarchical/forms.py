@@ -113,3 +113,55 @@ def requested_forms(parameterisation: str | Mapping[str, str], parameters: Seque
         raise UsageError(f"parameterisation must be one of {', '.join(allowed)}, or a mapping of "
                          f"{' and '.join(parameters)} to one of them; got {parameterisation!r}")
     return {name: given.get(name, "auto") for name in parameters}
+
+
+def form_weight(form: str) -> float:
+    """Return the weight of :func:`partial_level` that gives ``form``: 1.0 centred, 0.0 non-centred.
+
+    Parameters
+    ----------
+    form : {"centred", "non-centred"}
+
+    Returns
+    -------
+    float
+    """
+    return 1.0 if form == "centred" else 0.0
+
+
+def partial_level(name: str, mu, tau, weight, **dims: object):
+    """Return participant-level values theta ~ Normal(mu, tau), centred or not as the data ``weight`` says.
+
+    The partially non-centred form: theta_raw ~ Normal(w mu, tau^w) is
+    sampled and theta = mu + tau^(1 - w) (theta_raw - w mu) kept; w = 1 is
+    the centred form (theta_raw = theta), w = 0 the non-centred one
+    (theta_raw = z ~ Normal(0, 1)). With w a ``pm.Data`` value, both forms
+    share one compiled model (Papaspiliopoulos, Roberts & Sköld, 2007;
+    Gorinova, Moore & Hoffman, 2020).
+
+    Parameters
+    ----------
+    name : str
+        The kept variable; the sampled one is ``<name>_raw``.
+    mu, tau : tensor-like
+        The population mean (broadcasting against the values) and spread.
+    weight : tensor-like
+        w, 1.0 or 0.0 (:func:`form_weight`).
+    **dims
+        ``dims=`` or ``shape=`` of the values.
+
+    Returns
+    -------
+    pytensor.tensor.TensorVariable
+
+    References
+    ----------
+    Papaspiliopoulos, O., Roberts, G. O., & Sköld, M. (2007), op. cit.
+    Gorinova, M., Moore, D., & Hoffman, M. (2020). Automatic
+    reparameterisation of probabilistic programs. ICML, PMLR 119, 3648-3657.
+    """
+    import pymc as pm
+
+    raw = pm.Normal(f"{name}_raw", weight * mu, tau ** weight, **dims)
+    return pm.Deterministic(name, mu + tau ** (1.0 - weight) * (raw - weight * mu),
+                            **{k: v for k, v in dims.items() if k == "dims"})

@@ -8,12 +8,12 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.special import expit
+from scipy.special import expit, gammaln, log_expit
 
 from foretell.curves import TREND_SUMMARIES
-from foretell.hierarchical.forms import choose_by_strength
+from foretell.hierarchical.forms import choose_by_strength, form_weight, partial_level
 from foretell.hierarchical.gate import Diagnostics, Gate, diagnose
-from foretell.hierarchical.sampling import quiet, sample
+from foretell.hierarchical.sampling import sample, structure
 from foretell.stats.intervals import hdi
 from foretell.validation import check_option
 
@@ -219,10 +219,15 @@ def build_model(data: GroupModelData, spec: GroupModelSpec = GroupModelSpec()) -
     m_g = mean_b cell[g, b] and trend k_g = sum_b t_b cell[g, b] / sum_b t_b^2:
     eta_ib = a_i + b_i t_b + (cell[g, b] - m_g - k_g t_b). Centred:
     a_i ~ Normal(m_g, sd_intercept); non-centred: a_i = m_g + sd_intercept z_i,
-    z_i ~ Normal(0, 1) (Betancourt & Girolami, 2015). The slopes b_i are
-    always non-centred: block positions span only 1, so a participant's data
-    pin the slope far less than the intercept, and a small slope spread makes
-    the centred form a funnel.
+    z_i ~ Normal(0, 1) (Betancourt & Girolami, 2015), as the data's
+    ``intercept_form`` weight says
+    (:func:`foretell.hierarchical.forms.partial_level`), so that both forms
+    share one compiled model. The slopes b_i are always non-centred: block
+    positions span only 1, so a participant's data pin the slope far less
+    than the intercept, and a small slope spread makes the centred form a
+    funnel. The data enter through ``pm.Data`` containers
+    (:func:`group_data`): every metric of the same likelihood, trend and
+    shape is sampled on one compiled model (:func:`group_structure`).
 
     Parameters
     ----------
@@ -246,39 +251,80 @@ def build_model(data: GroupModelData, spec: GroupModelSpec = GroupModelSpec()) -
 
     n_groups, n_blocks, n_people = len(data.groups), len(data.units), len(data.participants)
     scale = spec.prior_scale if spec.prior_scale is not None else (1.5 if data.kind == "binomial" else 1.0)
-    obs_group = data.group[data.participant]
-    t = data.position[data.block]
     with pm.Model() as model:
+        d = {k: pm.Data(k, v) for k, v in group_data(data, spec).items()}
+        person, block, position = d["participant"], d["block"], d["position"]
+        obs_group = d["group"][person]
+        t = position[block]
         if spec.trend == "categorical":
             cell = pm.Normal("cell", 0.0, scale, shape=(n_groups, n_blocks))
         else:
             level = pm.Normal("level", 0.0, scale, shape=n_groups)
             slope = pm.Normal("slope", 0.0, scale, shape=n_groups)
-            cell = pm.Deterministic("cell", level[:, None] + slope[:, None] * data.position[None, :])
+            cell = pm.Deterministic("cell", level[:, None] + slope[:, None] * position[None, :])
         if not spec.random_effects:
-            eta = cell[obs_group, data.block]
+            eta = cell[obs_group, block]
         else:
             level = cell.mean(axis=1)
-            effects = [("intercept", level, np.ones(len(data.y)))]
+            sd = pm.HalfNormal("sd_intercept", 1.0)
+            intercept = partial_level("intercept", level[d["group"]], sd, d["intercept_form"], shape=n_people)
             residual = cell - level[:, None]
+            eta = intercept[person]
             if n_blocks > 1:
-                trend = (cell * data.position[None, :]).sum(axis=1) / np.sum(data.position ** 2)
-                effects.append(("block_slope", trend, t))
-                residual = residual - trend[:, None] * data.position[None, :]
-            eta = residual[obs_group, data.block]
-            for name, centre, covariate in effects:
-                sd = pm.HalfNormal(f"sd_{name}", 1.0)
-                if spec.parameterisation == "centred" and name == "intercept":
-                    effect = pm.Normal(name, centre[data.group], sd, shape=n_people)
-                else:
-                    z = pm.Normal(f"{name}_z", 0.0, 1.0, shape=n_people)
-                    effect = pm.Deterministic(name, centre[data.group] + sd * z)
-                eta = eta + effect[data.participant] * covariate
+                trend = (cell * position[None, :]).sum(axis=1) / (position ** 2).sum()
+                residual = residual - trend[:, None] * position[None, :]
+                sd = pm.HalfNormal("sd_block_slope", 1.0)
+                z = pm.Normal("block_slope_z", 0.0, 1.0, shape=n_people)
+                eta = eta + pm.Deterministic("block_slope", trend[d["group"]] + sd * z)[person] * t
+            eta = eta + residual[obs_group, block]
         if data.kind == "binomial":
-            pm.Binomial("y", n=data.n, logit_p=eta, observed=data.y)
+            pm.Binomial("y", n=d["n_trials"], logit_p=eta, observed=d["metric_value"], shape=d["metric_value"].shape)
         else:
-            pm.Normal("y", mu=eta, sigma=pm.HalfNormal("sigma", 1.0), observed=data.y)
+            pm.Normal("y", mu=eta, sigma=pm.HalfNormal("sigma", 1.0), observed=d["metric_value"],
+                      shape=d["metric_value"].shape)
     return model
+
+
+def group_data(data: GroupModelData, spec: GroupModelSpec) -> dict[str, np.ndarray]:
+    """Return the values of :func:`build_model`'s data containers for one metric.
+
+    Parameters
+    ----------
+    data : GroupModelData
+    spec : GroupModelSpec
+        Its parameterisation gives the intercepts' form weight.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+    """
+    values = {"metric_value": data.y, "participant": data.participant, "block": data.block, "group": data.group,
+              "position": np.asarray(data.position, float),
+              "intercept_form": np.asarray(form_weight(spec.parameterisation), float)}
+    if data.kind == "binomial":
+        values["n_trials"] = data.n
+    return values
+
+
+def group_structure(data: GroupModelData, spec: GroupModelSpec) -> object:
+    """Return the one compiled :func:`build_model` of ``data``'s structure and ``spec`` in this process.
+
+    The structure: likelihood, trend, random effects, prior scale, and the
+    participants, blocks and groups (not the metric, its values or the
+    intercepts' form).
+
+    Parameters
+    ----------
+    data : GroupModelData
+    spec : GroupModelSpec
+
+    Returns
+    -------
+    foretell.hierarchical.sampling.Structure
+    """
+    key = ("group", data.kind, spec.trend, spec.random_effects, spec.prior_scale, data.participants, data.units,
+           data.groups)
+    return structure(key, lambda: build_model(data, spec))
 
 
 @dataclass(frozen=True)
@@ -364,17 +410,52 @@ def fit_group_model(data: GroupModelData, contrasts: Sequence[tuple[str, str]], 
     est, se = participant_intercepts(data)
     how, reason = choose_by_strength(est, se, data.group, parameterisation)
     spec = GroupModelSpec(trend=trend, parameterisation=how)
-    model = build_model(data, spec)
-    idata, sampler, messages = sample(model, draws=draws, tune=tune, chains=chains, seed=seed, cores=cores,
-                                      progress=progress)
-    import pymc as pm
-
-    with quiet(), model:
-        pm.compute_log_likelihood(idata, progressbar=False)
-    diag = diagnose(idata, sampler, gate)
+    idata, sampler, messages = sample(group_structure(data, spec), data=group_data(data, spec), draws=draws,
+                                      tune=tune, chains=chains, seed=seed, cores=cores, progress=progress)
+    idata.add_groups(log_likelihood={"y": pointwise_loglik(data, idata)}, dims={"y": ["observation"]})
+    diag = diagnose(idata, sampler, gate, [v for v in idata.posterior.data_vars if not v.endswith(("_z", "_raw"))])
     curves, effects = summarise_group_model(data, idata, contrasts, called=diag.ok)
     joint = summarise_joint(data, idata, contrasts, called=diag.ok)
     return GroupModelFit(data.metric, curves, effects, joint, diag, how, reason, spec, tuple(messages), idata)
+
+
+def pointwise_loglik(data: GroupModelData, idata: object) -> np.ndarray:
+    """Return (chains, draws, observations): each participant x block value's log-likelihood at every draw.
+
+    The linear predictor eta_ib of :func:`build_model` rebuilt from the
+    posterior's ``cell``, ``intercept`` and ``block_slope``; binomial
+    log C(n, y) + y log logistic(eta) + (n - y) log logistic(-eta), or
+    Gaussian log Normal(y | eta, sigma) (common practice).
+
+    Parameters
+    ----------
+    data : GroupModelData
+    idata : arviz.InferenceData
+        A posterior of :func:`build_model` on ``data``.
+
+    Returns
+    -------
+    numpy.ndarray
+    """
+    post = idata.posterior
+    cell = post["cell"].to_numpy()
+    person, block, pos = data.participant, data.block, data.position
+    if "intercept" in post:
+        residual = cell - cell.mean(axis=-1, keepdims=True)
+        eta = post["intercept"].to_numpy()[..., person]
+        if "block_slope" in post:
+            trend = (cell * pos).sum(axis=-1) / np.sum(pos ** 2)
+            residual = residual - trend[..., None] * pos
+            eta = eta + post["block_slope"].to_numpy()[..., person] * pos[block]
+        eta = eta + residual[..., data.group[person], block]
+    else:
+        eta = cell[..., data.group[person], block]
+    if data.kind == "binomial":
+        y, n = data.y, data.n
+        choose = gammaln(n + 1.0) - gammaln(y + 1.0) - gammaln(n - y + 1.0)
+        return choose + y * log_expit(eta) + (n - y) * log_expit(-eta)
+    sigma = post["sigma"].to_numpy()[..., None]
+    return -0.5 * ((data.y - eta) / sigma) ** 2 - np.log(sigma) - 0.5 * math.log(2.0 * math.pi)
 
 
 def _scale_draws(data: GroupModelData, cell: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -410,9 +491,9 @@ def summarise_group_model(data: GroupModelData, idata: object, contrasts: Sequen
     Returns
     -------
     (pandas.DataFrame, pandas.DataFrame)
-        Columns group, session, block, metric, mean, hdi_low, hdi_high,
-        called; and contrast, session, block, metric, diff_mean, hdi_low,
-        hdi_high, prob_positive, called.
+        Columns group, session, block, metric, mean, hdi95_low, hdi95_high,
+        called; and contrast, session, block, metric, diff_mean, hdi95_low,
+        hdi95_high, prob_positive, called.
     """
     cell = idata.posterior["cell"].to_numpy()  # (chain, draw, group, block)
     curve, compared = _scale_draws(data, cell)
@@ -426,7 +507,7 @@ def summarise_group_model(data: GroupModelData, idata: object, contrasts: Sequen
             low, high = hdi(curve[..., g, b]) if called else nothing
             curve_rows.append({"group": name, "session": session, "block": block, "metric": data.metric,
                                "mean": float(curve[..., g, b].mean()) if called else math.nan,
-                               "hdi_low": low, "hdi_high": high, "called": called})
+                               "hdi95_low": low, "hdi95_high": high, "called": called})
         for g_name, ref_name in contrasts:
             if g_name not in data.groups or ref_name not in data.groups:
                 continue
@@ -437,7 +518,7 @@ def summarise_group_model(data: GroupModelData, idata: object, contrasts: Sequen
             low, high = hdi(diff) if called else nothing
             effect_rows.append({"contrast": f"{g_name}-{ref_name}", "session": session, "block": block,
                                 "metric": data.metric, "diff_mean": float(diff.mean()) if called else math.nan,
-                                "hdi_low": low, "hdi_high": high,
+                                "hdi95_low": low, "hdi95_high": high,
                                 "prob_positive": float((diff > 0).mean()) if called else math.nan,
                                 "called": called})
     return pd.DataFrame(curve_rows), pd.DataFrame(effect_rows)

@@ -17,8 +17,8 @@ from foretell.hierarchical.sampling import quiet
 if TYPE_CHECKING:
     from foretell.hierarchical.gate import Diagnostics, Gate
 
-ELPD_COLUMNS = ("model", "rank", "elpd", "se", "d_elpd", "dse", "p_loo", "weight", "called", "evidence",
-                "provisional")
+ELPD_COLUMNS = ("model", "rank", "elpd_loo", "elpd_loo_se", "elpd_diff", "elpd_diff_se", "p_loo", "stacking_weight",
+                "called", "evidence", "provisional")
 ELPD_MARGIN = 4.0
 """A difference in ELPD is evidence only above 4 (Sivula, Magnusson & Vehtari, 2020: below it the
 normal approximation of its uncertainty is unreliable)."""
@@ -235,9 +235,10 @@ def compare_loo(loos: Mapping[str, az.ELPDData], diagnostics: Mapping[str, "Diag
     Returns
     -------
     (pandas.DataFrame, list of str)
-        Columns :data:`ELPD_COLUMNS`: model, rank (1 = highest elpd), elpd,
-        se, d_elpd (elpd - the first's, <= 0), dse, p_loo, weight, called
-        (True on the called model's row), evidence, provisional.
+        Columns :data:`ELPD_COLUMNS`: model, rank (1 = highest elpd_loo),
+        elpd_loo, elpd_loo_se, elpd_diff (elpd_loo - the first's, <= 0),
+        elpd_diff_se, p_loo, stacking_weight, called (True on the called
+        model's row), evidence, provisional.
 
     References
     ----------
@@ -272,9 +273,10 @@ def compare_loo(loos: Mapping[str, az.ELPDData], diagnostics: Mapping[str, "Diag
     called = bool(distinct[1:].all()) and not missing
     provisional = called and any(diagnostics[m].provisional for m in passed)
     table = pd.DataFrame({
-        "model": elpd.index, "rank": np.arange(1, len(elpd) + 1), "elpd": elpd.to_numpy(),
-        "se": [math.sqrt(n_clusters * np.var(sums[m])) for m in elpd.index], "d_elpd": d_elpd, "dse": dse,
-        "p_loo": [float(passed[m].p_loo) for m in elpd.index], "weight": weights.reindex(elpd.index).to_numpy(),
+        "model": elpd.index, "rank": np.arange(1, len(elpd) + 1), "elpd_loo": elpd.to_numpy(),
+        "elpd_loo_se": [math.sqrt(n_clusters * np.var(sums[m])) for m in elpd.index], "elpd_diff": d_elpd,
+        "elpd_diff_se": dse, "p_loo": [float(passed[m].p_loo) for m in elpd.index],
+        "stacking_weight": weights.reindex(elpd.index).to_numpy(),
         "called": [called and i == 0 for i in range(len(elpd))],
         "evidence": ["first"] + ["distinct" if d else "indistinct" for d in distinct[1:]],
         "provisional": provisional})
@@ -288,7 +290,7 @@ def compare_loo(loos: Mapping[str, az.ELPDData], diagnostics: Mapping[str, "Diag
 def _elpd_words(table: pd.DataFrame, n_clusters: int, called: bool, missing: bool, baseline: str | None) -> str:
     """Return the sentence that says what the ELPD comparison calls, with the rule behind it."""
     first = table["model"].iloc[0]
-    rule = (f"|d_elpd| > {ELPD_MARGIN:g} and > {ELPD_SE_FACTOR:g} SE, SE over {n_clusters} participants "
+    rule = (f"|elpd_diff| > {ELPD_MARGIN:g} and > {ELPD_SE_FACTOR:g} SE, SE over {n_clusters} participants "
             "(Sivula, Magnusson & Vehtari, 2020)")
     if missing:
         return (f"ELPD comparison not called: the baseline {baseline} failed the gate, so no model can be shown "
@@ -296,6 +298,6 @@ def _elpd_words(table: pd.DataFrame, n_clusters: int, called: bool, missing: boo
     if called:
         runner = table.iloc[1]
         return (f"ELPD comparison called: {first} ahead of every other model ({rule}); the next, "
-                f"{runner['model']}, by {-runner['d_elpd']:.1f} +- {runner['dse']:.1f}")
+                f"{runner['model']}, by {-runner['elpd_diff']:.1f} +- {runner['elpd_diff_se']:.1f}")
     alike = table.loc[table["evidence"] == "indistinct", "model"].tolist()
     return (f"ELPD comparison not called: {first} cannot be told apart from {', '.join(alike)} ({rule})")

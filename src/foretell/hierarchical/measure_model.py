@@ -9,6 +9,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from foretell.hierarchical.forms import form_weight, partial_level
 from foretell.labels import block_label
 from foretell.measure import Measure, participant_spans
 from foretell.stats.regression import gram_inverse
@@ -292,8 +293,66 @@ def leave_out(pooled: PooledUnits, unit: int) -> tuple[PooledUnits, PooledUnits]
     return replace(pooled, stats=without), pooled
 
 
-def build_measure_model(pooled: PooledUnits, forms: Mapping[str, str]) -> object:
-    """Return the PyMC model of the pooled, standardised outcome.
+SLOPE_VARIABLES = ("mu_b", "tau_b", "b_raw", "b", "slope_mean", "slope_diff")
+"""The learner slope's variables: present in the one compiled structure, prior-only for the baseline, and
+dropped from the baseline's posterior."""
+
+
+def _structure_key(pooled: PooledUnits) -> tuple:
+    """Return what fixes the measure model's graph and shapes: participants, groups and column counts."""
+    return ("measure", pooled.participants, pooled.groups, pooled.n_nuisance, pooled.practice, pooled.unit_levels)
+
+
+def measure_structure(pooled: PooledUnits) -> object:
+    """Return the one compiled :func:`build_measure_model` of ``pooled``'s structure in this process.
+
+    Every learner model, the baseline and every leave-one-unit-out refit of
+    one study share it: their data differ, not the graph
+    (:func:`measure_data`).
+
+    Parameters
+    ----------
+    pooled : PooledUnits
+
+    Returns
+    -------
+    foretell.hierarchical.sampling.Structure
+    """
+    from foretell.hierarchical.sampling import structure
+
+    return structure(_structure_key(pooled), lambda: build_measure_model(pooled))
+
+
+def measure_data(pooled: PooledUnits, forms: Mapping[str, str]) -> dict[str, np.ndarray]:
+    """Return the values of :func:`build_measure_model`'s data containers for ``pooled`` and ``forms``.
+
+    The baseline's sums get a slope column of zeros (its slope is then
+    prior-only, and the same compiled model serves it).
+
+    Parameters
+    ----------
+    pooled : PooledUnits
+    forms : mapping of str to str
+        "intercept", "practice" and "slope" -> "centred" or "non-centred"
+        (missing ones non-centred).
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+    """
+    s = pooled.stats
+    pad = 0 if pooled.slope else 1
+    return {"gram": np.pad(s.gram, ((0, 0), (0, pad), (0, pad))), "cross": np.pad(s.cross, ((0, 0), (0, pad))),
+            "yy": s.yy, "n_trials": s.n, "unit_participant": pooled.participant,
+            "participant_group": np.asarray(pooled.group_of, np.int64),
+            "form_weight": np.array([form_weight(forms.get(k, "non-centred"))
+                                     for k in ("intercept", "practice", "slope")]),
+            "slope_unit": np.asarray(pooled.slope_unit if pooled.slope else 1.0, float),
+            "y_scale": np.asarray(pooled.y_scale, float)}
+
+
+def build_measure_model(pooled: PooledUnits) -> object:
+    """Return the PyMC model of the pooled, standardised outcome, its data in ``pm.Data`` containers.
 
     y*_t = a_i + e_u + g' z_t + d_i l_t + b_i x*_t + eps_t, eps_t ~
     Normal(0, sigma_i): participant i's intercept a_i ~ Normal(mu_a, tau_a);
@@ -301,21 +360,24 @@ def build_measure_model(pooled: PooledUnits, forms: Mapping[str, str]) -> object
     (the baseline's columns), with each participant's own practice slope
     d_i ~ Normal(0, tau_d) on log trial l_t, so that a learner cannot
     borrow a participant's practice curve; the slope b_i ~ Normal(mu_b[group],
-    tau_b) (learner models only); the unit's own level e_u ~ Normal(0,
-    tau_unit) when the baseline has block intercepts (integrated out
-    analytically, :func:`gaussian_unit_loglik`); sigma_i ~ HalfNormal. Every
-    prior is on the standardised scales (:data:`PRIOR_SCALES`): means and g
-    Normal(0, s), spreads and sigma HalfNormal(s). ``slope_mean`` = mu_b in
-    the reported unit per bit (:attr:`PooledUnits.slope_unit`),
-    ``sigma_outcome`` = sigma_i on the outcome's own scale; with several
-    groups ``slope_diff`` = slope_mean[g] - slope_mean[first group].
+    tau_b) (prior-only in the baseline, whose regressor column is 0); the
+    unit's own level e_u ~ Normal(0, tau_unit) when the baseline has block
+    intercepts (integrated out analytically, :func:`gaussian_unit_loglik`);
+    sigma_i ~ HalfNormal. Every prior is on the standardised scales
+    (:data:`PRIOR_SCALES`): means and g Normal(0, s), spreads and sigma
+    HalfNormal(s). ``slope_mean`` = mu_b in the reported unit per bit
+    (:attr:`PooledUnits.slope_unit`), ``sigma_outcome`` = sigma_i on the
+    outcome's own scale; with several groups ``slope_diff`` =
+    slope_mean[g] - slope_mean[first group]. The participant-level values
+    are centred or not as the data's ``form_weight`` says
+    (:func:`foretell.hierarchical.forms.partial_level`), so that one
+    compiled model serves every learner, the baseline and every refit
+    (:func:`measure_data`, :func:`measure_structure`).
 
     Parameters
     ----------
     pooled : PooledUnits
-    forms : mapping of str to str
-        "intercept", "practice" and "slope" -> "centred" or "non-centred"
-        (a_i = mu_a + tau_a z_i, z_i ~ Normal(0, 1)).
+        Gives the structure (participants, groups, columns) and the first data.
 
     Returns
     -------
@@ -337,42 +399,33 @@ def build_measure_model(pooled: PooledUnits, forms: Mapping[str, str]) -> object
     P = len(pooled.participants)
     coords = {"participant": list(pooled.participants), "group": list(pooled.groups),
               "baseline_column": [f"z{j + 1}" for j in range(q)]}
-    g = pooled.group_of
     with pm.Model(coords=coords) as model:
-        parts = [_level("a", pm.Normal("mu_a", 0.0, s["mu_a"]), pm.HalfNormal("tau_a", s["tau_a"]),
-                        forms["intercept"], "participant")[:, None]]
+        d = {k: pm.Data(k, v) for k, v in measure_data(pooled, {}).items()}
+        w, g = d["form_weight"], d["participant_group"]
+        parts = [partial_level("a", pm.Normal("mu_a", 0.0, s["mu_a"]), pm.HalfNormal("tau_a", s["tau_a"]), w[0],
+                               dims="participant")[:, None]]
         if q:
             shared = pm.Normal("g", 0.0, s["g"], dims="baseline_column")
             parts.append(pt.broadcast_to(shared[None, :], (P, q)))
         if pooled.practice:
             tau_d = pm.HalfNormal("tau_d", s["tau_d"])
-            parts.append(_level("d", 0.0, tau_d, forms["practice"], "participant")[:, None])
-        if pooled.slope:
-            mu_b = pm.Normal("mu_b", 0.0, s["mu_b"], dims="group")
-            tau_b = pm.HalfNormal("tau_b", s["tau_b"])
-            parts.append(_level("b", mu_b[g], tau_b, forms["slope"], "participant")[:, None])
-            slope = pm.Deterministic("slope_mean", mu_b * pooled.slope_unit, dims="group")
-            if len(pooled.groups) > 1:
-                model.add_coord("group_contrast", [f"{gr} - {pooled.groups[0]}" for gr in pooled.groups[1:]])
-                pm.Deterministic("slope_diff", slope[1:] - slope[0], dims="group_contrast")
+            parts.append(partial_level("d", 0.0, tau_d, w[1], dims="participant")[:, None])
+        mu_b = pm.Normal("mu_b", 0.0, s["mu_b"], dims="group")
+        tau_b = pm.HalfNormal("tau_b", s["tau_b"])
+        parts.append(partial_level("b", mu_b[g], tau_b, w[2], dims="participant")[:, None])
+        slope = pm.Deterministic("slope_mean", mu_b * d["slope_unit"], dims="group")
+        if len(pooled.groups) > 1:
+            model.add_coord("group_contrast", [f"{gr} - {pooled.groups[0]}" for gr in pooled.groups[1:]])
+            pm.Deterministic("slope_diff", slope[1:] - slope[0], dims="group_contrast")
         sigma = pm.HalfNormal("sigma", s["sigma"], dims="participant")
-        pm.Deterministic("sigma_outcome", sigma * pooled.y_scale, dims="participant")
+        pm.Deterministic("sigma_outcome", sigma * d["y_scale"], dims="participant")
         tau = pm.HalfNormal("tau_unit", s["tau_unit"]) if pooled.unit_levels else None
-        p = pooled.participant
+        p = d["unit_participant"]
         theta = pt.concatenate(parts, axis=1)[p]
-        ll = gaussian_unit_loglik(theta, sigma[p], pm.math.log(sigma)[p], pooled.stats, tau=tau, log=pm.math.log)
+        stats = UnitStats(d["n_trials"], d["gram"], d["cross"], d["yy"])
+        ll = gaussian_unit_loglik(theta, sigma[p], pm.math.log(sigma)[p], stats, tau=tau, log=pm.math.log)
         pm.Potential("y", ll.sum())
     return model
-
-
-def _level(name: str, mu, tau, form: str, dims: str):
-    """Return participant-level values Normal(mu, tau) in the centred or non-centred form."""
-    import pymc as pm
-
-    if form == "centred":
-        return pm.Normal(name, mu, tau, dims=dims)
-    z = pm.Normal(f"{name}_z", 0.0, 1.0, dims=dims)
-    return pm.Deterministic(name, mu + tau * z, dims=dims)
 
 
 def unit_loglik(idata: object, pooled: PooledUnits) -> np.ndarray:

@@ -10,9 +10,11 @@ import os
 import signal
 import threading
 import warnings
-from collections.abc import Iterator, Sequence
+from collections import OrderedDict
+from collections.abc import Callable, Hashable, Iterator, Mapping, Sequence
 
 import arviz as az
+import numpy as np
 
 from foretell.errors import UsageError
 from foretell.validation import check_count, check_n_jobs
@@ -25,14 +27,128 @@ is as small a step as is useful before the divergences say the model's
 geometry, not the step, is the problem (Betancourt, 2017)."""
 
 
+STRUCTURES_KEPT = 8
+"""Compiled model structures kept per process (the least recently used is dropped beyond this)."""
+
+
 def sampler_name() -> str:
-    """Return the NUTS implementation :func:`sample` uses: "nutpie" when installed, else "pymc".
+    """Return the NUTS implementation :func:`sample` uses: "nutpie" when it can be imported, else "pymc".
+
+    nutpie (a dependency of foretell) compiles a model once and samples
+    its chains in parallel; PyMC's own NUTS is the fallback, and every
+    result names the sampler that ran.
 
     Returns
     -------
     str
     """
     return "nutpie" if importlib.util.find_spec("nutpie") is not None else "pymc"
+
+
+class Structure:
+    """A PyMC model whose data enter through ``pm.Data`` containers, compiled at most once for nutpie.
+
+    One structure serves every data set of the same shape: :func:`sample`
+    hands it new data (nutpie's ``with_data``, or ``pymc.set_data`` for
+    PyMC's NUTS) instead of building and compiling a model again. PyTensor
+    keeps what it compiles in its on-disk cache, so a second process
+    compiles less again.
+
+    Parameters
+    ----------
+    model : pymc.Model
+        The model, its data in ``pm.Data`` containers.
+    """
+
+    def __init__(self, model: object) -> None:
+        self.model = model
+        self._compiled = None
+        self._expand = None
+
+    def compiled(self) -> object:
+        """Return the model compiled for nutpie (compiled on the first call only).
+
+        nutpie keeps the unconstrained values only (``var_names=[]``):
+        compiling its own function of the other variables costs as much as
+        the log density again, in code no cache keeps; :meth:`expanded`
+        computes them instead.
+        """
+        if self._compiled is None:
+            import nutpie
+
+            with quiet():
+                self._compiled = nutpie.compile_pymc_model(self.model, var_names=[])
+        return self._compiled
+
+    def expanded(self, raw: object, data: Mapping[str, object]) -> object:
+        """Return the posterior of the :meth:`kept` variables from nutpie's unconstrained draws ``raw``.
+
+        One PyTensor function of the model's value variables (compiled once,
+        in PyTensor's on-disk cache) gives the constrained values and the
+        deterministics at every draw, on ``data``.
+
+        Parameters
+        ----------
+        raw : xarray.Dataset
+            nutpie's posterior of the value variables.
+        data : mapping of str to array-like
+            The values of the ``pm.Data`` containers the draws were sampled on.
+
+        Returns
+        -------
+        xarray.Dataset
+        """
+        import pymc as pm
+
+        if self._expand is None:
+            with quiet():
+                self._expand = self.model.compile_fn(self.model.unobserved_value_vars, inputs=self.model.value_vars,
+                                                     point_fn=False, on_unused_input="ignore")
+        if data:
+            pm.set_data(data, model=self.model)
+        names = [v.name for v in self.model.unobserved_value_vars]
+        keep = set(self.kept())
+        inputs = [raw[v.name].to_numpy() for v in self.model.value_vars]
+        chains, draws = inputs[0].shape[:2]
+        values: dict[str, list] = {n: [] for n in names if n in keep}
+        for c in range(chains):
+            for d in range(draws):
+                for name, value in zip(names, self._expand(*[x[c, d] for x in inputs])):
+                    if name in keep:
+                        values[name].append(value)
+        arrays = {n: np.reshape(v, (chains, draws, *np.shape(v[0]))) for n, v in values.items()}
+        dims = {n: list(self.model.named_vars_to_dims[n]) for n in arrays if n in self.model.named_vars_to_dims}
+        return az.from_dict(posterior=arrays, coords=dict(self.model.coords), dims=dims).posterior
+
+    def kept(self) -> list[str]:
+        """Return the variables a posterior keeps: the model's random variables and deterministics by name."""
+        return [v.name for v in (*self.model.free_RVs, *self.model.deterministics)]
+
+
+_STRUCTURES: OrderedDict[Hashable, Structure] = OrderedDict()
+
+
+def structure(key: Hashable, build: Callable[[], object]) -> Structure:
+    """Return the :class:`Structure` of ``key``, built by ``build()`` only when this process has none yet.
+
+    Parameters
+    ----------
+    key : hashable
+        Everything that fixes the model's graph and shapes (not its data).
+    build : callable
+        Returns the PyMC model of that structure, data in ``pm.Data``.
+
+    Returns
+    -------
+    Structure
+    """
+    if key in _STRUCTURES:
+        _STRUCTURES.move_to_end(key)
+        return _STRUCTURES[key]
+    _STRUCTURES[key] = made = Structure(build())
+    while len(_STRUCTURES) > STRUCTURES_KEPT:
+        _STRUCTURES.popitem(last=False)
+    return made
 
 
 def sampling_cores(chains: int, n_jobs: int) -> int:
@@ -133,11 +249,13 @@ def _interruptions() -> Iterator[list[BaseException]]:
 
 
 def sample(model: object, *, draws: int, tune: int, chains: int, seed: int,
-           target_accept: float | Sequence[float] = TARGET_ACCEPTS, cores: int = 1, progress: bool = False
-           ) -> tuple[az.InferenceData, str, list[str]]:
-    """Return (posterior, sampler name, messages) of NUTS on a PyMC ``model``.
+           target_accept: float | Sequence[float] = TARGET_ACCEPTS, cores: int = 1, progress: bool = False,
+           data: Mapping[str, object] | None = None) -> tuple[az.InferenceData, str, list[str]]:
+    """Return (posterior, sampler name, messages) of NUTS on a PyMC ``model``, on ``data`` when given.
 
     nutpie when installed, PyMC's own NUTS otherwise (:func:`sampler_name`).
+    A :class:`Structure` is compiled once and sampled on every ``data``
+    handed to it; a bare PyMC model is compiled for this call.
     A posterior with divergent transitions is sampled again at the next
     target acceptance of ``target_accept`` (smaller steps: divergences
     flag regions the sampler's step size is too large for; Betancourt,
@@ -151,7 +269,7 @@ def sample(model: object, *, draws: int, tune: int, chains: int, seed: int,
 
     Parameters
     ----------
-    model : pymc.Model
+    model : Structure or pymc.Model
         The model to sample.
     draws, tune : int
         Draws per chain kept (>= 1), and tuning steps before them (>= 0).
@@ -166,10 +284,14 @@ def sample(model: object, *, draws: int, tune: int, chains: int, seed: int,
         Chains run in parallel (:func:`sampling_cores`).
     progress : bool, default False
         Show the sampler's progress bar.
+    data : mapping of str to array-like, optional
+        New values of the model's ``pm.Data`` containers, by name.
 
     Returns
     -------
     (arviz.InferenceData, str, list of str)
+        The posterior keeps the model's named variables (not nutpie's
+        unconstrained copies).
 
     Raises
     ------
@@ -195,10 +317,12 @@ def sample(model: object, *, draws: int, tune: int, chains: int, seed: int,
         raise UsageError(f"target_accept must be between 0 and 1 (one value or several to try in turn), "
                          f"got {target_accept!r}")
     which = sampler_name()
-    messages: list[str] = []
+    shared = model if isinstance(model, Structure) else Structure(model)
+    messages = [] if which == "nutpie" else ["nutpie is not available: PyMC's own NUTS sampled instead (slower)"]
     for step, accept in enumerate(ladder):
-        idata, caught = _nuts(model, draws=draws, tune=tune, chains=chains, cores=min(cores, chains),
-                              seed=int(seed), target_accept=accept, sampler=which, progress=bool(progress))
+        idata, caught = _nuts(shared, dict(data or {}), draws=draws, tune=tune, chains=chains,
+                              cores=min(cores, chains), seed=int(seed), target_accept=accept, sampler=which,
+                              progress=bool(progress))
         messages += caught
         divergent = int(idata.sample_stats["diverging"].sum()) if "sample_stats" in idata else 0
         if not divergent or step == len(ladder) - 1:
@@ -210,18 +334,32 @@ def sample(model: object, *, draws: int, tune: int, chains: int, seed: int,
     return idata, which, list(dict.fromkeys(messages))
 
 
-def _nuts(model: object, *, draws: int, tune: int, chains: int, cores: int, seed: int, target_accept: float,
-          sampler: str, progress: bool) -> tuple[az.InferenceData, list[str]]:
+def _nuts(shared: Structure, data: dict[str, object], *, draws: int, tune: int, chains: int, cores: int,
+          seed: int, target_accept: float, sampler: str, progress: bool) -> tuple[az.InferenceData, list[str]]:
     """Return (posterior, warnings) of one NUTS run; an interruption is raised again (see :func:`sample`)."""
     import pymc as pm
 
-    with _interruptions() as stopped, quiet() as caught, model:
+    with _interruptions() as stopped, quiet() as caught:
         try:
-            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
-                              target_accept=target_accept, nuts_sampler=sampler, progressbar=progress,
-                              compute_convergence_checks=False)
+            if sampler == "nutpie":
+                import nutpie
+
+                compiled = shared.compiled()
+                logp_data = {k: v for k, v in data.items() if k in compiled.shared_data}  # the log density's own
+                raw = nutpie.sample(compiled.with_data(**logp_data) if logp_data else compiled, draws=draws,
+                                    tune=tune, chains=chains, cores=cores, seed=seed, target_accept=target_accept,
+                                    progress_bar=progress, save_warmup=False)
+                idata = az.InferenceData(posterior=shared.expanded(raw.posterior, data),
+                                         sample_stats=raw.sample_stats)
+            else:
+                with shared.model:
+                    if data:
+                        pm.set_data(data)
+                    idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed,
+                                      target_accept=target_accept, nuts_sampler="pymc", progressbar=progress,
+                                      compute_convergence_checks=False)
         except Exception:
-            if stopped:  # PyMC failed on the chains the interruption cut short
+            if stopped:  # the sampler failed on the chains the interruption cut short
                 raise stopped[0] from None
             raise
     if stopped:
@@ -230,4 +368,8 @@ def _nuts(model: object, *, draws: int, tune: int, chains: int, cores: int, seed
     if (got_chains, got_draws) != (chains, draws):
         raise KeyboardInterrupt(f"sampling stopped early: {got_chains} chains x {got_draws} draws "
                                 f"of {chains} x {draws}")
-    return idata, caught
+    kept = [v for v in shared.kept() if v in idata.posterior]
+    groups = {"posterior": idata.posterior[kept]}
+    if "sample_stats" in idata:
+        groups["sample_stats"] = idata.sample_stats
+    return az.InferenceData(**groups), caught

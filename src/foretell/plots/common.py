@@ -9,6 +9,8 @@ from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 OKABE_ITO = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7", "#000000")
 """The Okabe-Ito palette, safe for the common colour-vision deficiencies (Okabe & Ito, 2008): orange,
 sky blue, bluish green, yellow, blue, vermillion, reddish purple, black."""
+SMALLEST_FONT = "Smallest font (pt)"
+"""The PNG text key under which :func:`figure_png` records the figure's smallest font size."""
 HEATMAP = "cividis"
 """The heatmap colour map: perceptually uniform and colour-blind safe (Nunez, Anderton & Renslow, 2018)."""
 
@@ -36,10 +38,31 @@ def figure_png(fig: Figure, dpi: int = 150) -> bytes:
     import warnings
 
     buffer = io.BytesIO()
+    metadata = {SMALLEST_FONT: f"{smallest_font(fig):g}"}
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from (current )?font", category=UserWarning)
-        fig.savefig(buffer, format="png", dpi=dpi)
+        fig.savefig(buffer, format="png", dpi=dpi, metadata=metadata)
     return buffer.getvalue()
+
+
+def smallest_font(fig: Figure) -> float:
+    """Return the size in points of the smallest visible, non-empty text of ``fig`` (0 when it has none).
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+
+    Returns
+    -------
+    float
+        Written into every PNG (:data:`SMALLEST_FONT`), so that a reader of
+        the image can tell how large its text is once displayed: pt x dpi / 72
+        pixels at natural size.
+    """
+    from matplotlib.text import Text
+
+    sizes = [t.get_fontsize() for t in fig.findobj(Text) if t.get_visible() and t.get_text().strip()]
+    return float(min(sizes)) if sizes else 0.0
 
 
 def new_figure(n_panels: int = 1, *, width: float = 4.2, height: float = 3.6) -> tuple[Figure, list]:
@@ -112,12 +135,25 @@ def log_axes(ax) -> None:
     ----------
     ax : matplotlib.axes.Axes
     """
-    plain = FuncFormatter(lambda v, _: f"{v:g}")
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.autoscale_view()
-    for axis, (lo, hi) in ((ax.xaxis, ax.get_xlim()), (ax.yaxis, ax.get_ylim())):
-        subs = (1.0, 2.0, 5.0) if hi < 100 * lo else (1.0,)
-        axis.set_major_locator(LogLocator(base=10, subs=subs))
-        axis.set_major_formatter(plain)
-        axis.set_minor_formatter(NullFormatter())
+    plain_log_ticks(ax.xaxis, *ax.get_xlim())
+    plain_log_ticks(ax.yaxis, *ax.get_ylim())
+
+
+def plain_log_ticks(axis, low: float, high: float) -> None:
+    """Give a log ``axis`` plain-number ticks ("0.6", "2", never "6 × 10⁻¹"): 1, 2, 5 per decade over short spans.
+
+    Parameters
+    ----------
+    axis : matplotlib.axis.Axis
+    low, high : float
+        The axis's limits.
+    """
+    subs = (1.0, 2.0, 5.0) if high < 100 * low else (1.0,)
+    if high < 3 * low:
+        subs = tuple(float(k) for k in range(1, 10))
+    axis.set_major_locator(LogLocator(base=10, subs=subs))
+    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    axis.set_minor_formatter(NullFormatter())

@@ -152,7 +152,7 @@ def recovery_by_trials(confusion: pd.DataFrame, summary: pd.DataFrame, target_di
     models = list(dict.fromkeys(diag["generating_model"]))
     for i, model in enumerate(models):
         part = diag[diag["generating_model"] == model].sort_values("trials")
-        err = np.vstack([part["fraction"] - part["ci_low"], part["ci_high"] - part["fraction"]])
+        err = np.vstack([part["fraction"] - part["ci95_low"], part["ci95_high"] - part["fraction"]])
         left.errorbar(dodge(part["trials"], i, len(models)), part["fraction"], yerr=err, marker="o",
                       capsize=3, color=colour(i), label=model)
     _threshold(left, target_diagonal)
@@ -186,7 +186,7 @@ def rt_power_figure(rates: pd.DataFrame, target_power: float, false_positive_lev
     ----------
     rates : pandas.DataFrame
         The RT design check's ``rt_rates`` table (trials, generating, rate,
-        share, ci_low, ci_high).
+        share, ci95_low, ci95_high).
     target_power, false_positive_level : float
         The check's criteria, drawn as dashed lines.
     ci_level : float, default 0.95
@@ -208,7 +208,7 @@ def rt_power_figure(rates: pd.DataFrame, target_power: float, false_positive_lev
         names = list(dict.fromkeys(rows["generating"]))
         for i, name in enumerate(names):
             part = rows[rows["generating"] == name].sort_values("trials")
-            err = np.vstack([part["share"] - part["ci_low"], part["ci_high"] - part["share"]])
+            err = np.vstack([part["share"] - part["ci95_low"], part["ci95_high"] - part["share"]])
             ax.errorbar(dodge(part["trials"], i, len(names)), part["share"], yerr=err, marker="o", capsize=3,
                         color=colour(i), label=name)
         _threshold(ax, value)

@@ -10,7 +10,7 @@ import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from foretell.plots.common import colour, new_figure
+from foretell.plots.common import colour, new_figure, plain_log_ticks
 from foretell.stats.intervals import HDI_PROB
 
 
@@ -46,14 +46,23 @@ def _unit_ticks(ax, units: Sequence[tuple[str, str]]) -> None:
     ax.set_xlabel("block" if len(sessions) == 1 else "session:block")
 
 
-def curve_figure(group_curves: pd.DataFrame, metric: CurveMetric) -> Figure:
-    """Return the learning curve of one metric by group: participants' mean, and the model's HDI band.
+BOOTSTRAP_REPLICATES = 2000
+"""Resamples of participants behind a curve's interval when no hierarchical model is called (common practice)."""
 
-    Dots joined by a thin line: the mean over the group's participants;
-    thick line and band: the hierarchical model's posterior mean and
-    :data:`foretell.stats.intervals.HDI_PROB` HDI of a typical participant,
-    where a model was fitted and passed the diagnostics: one interval per
-    block, not adjusted for looking at many blocks (the legend says so).
+
+def curve_figure(group_curves: pd.DataFrame, metric: CurveMetric, *, curves: pd.DataFrame | None = None,
+                 seed: int = 0, chance: float | None = None, ceiling: float | None = None) -> Figure:
+    """Return the learning curve of one metric by group: each participant, the group mean and its interval.
+
+    Thin lines: each participant (with ``curves``). Dots and thick line: the
+    mean over the group's participants, with a band: the hierarchical
+    model's :data:`foretell.stats.intervals.HDI_PROB` HDI of a typical
+    participant where a model was fitted and passed the diagnostics (one
+    interval per block, not adjusted for looking at many blocks), else a
+    95% percentile bootstrap over participants (:data:`BOOTSTRAP_REPLICATES`
+    resamples; Efron & Tibshirani, 1993); the legend says which. Rates run
+    from 0 to 1 (no cut axis), reaction times are in ms, log scales have
+    plain ticks.
 
     Parameters
     ----------
@@ -61,34 +70,78 @@ def curve_figure(group_curves: pd.DataFrame, metric: CurveMetric) -> Figure:
         The groups step's ``group_curves`` table.
     metric : CurveMetric
         The metric drawn (its name, title, unit and whether it is on a log scale).
+    curves : pandas.DataFrame, optional
+        The groups step's ``curves`` table (participant values); without it,
+        no participant lines and no bootstrap band.
+    seed : int, default 0
+        The bootstrap's stream: ``child_rng(seed, "curve", metric, group)``.
+    chance, ceiling : float, optional
+        Dashed reference lines in the metric's unit: chance guessing, and the
+        best the source allows.
 
     Returns
     -------
     matplotlib.figure.Figure
     """
+    from foretell.summaries import METRIC_WORDS
+    from foretell.validation import child_rng
+
+    scale = 1000.0 if metric.unit == "seconds" else 1.0
     rows = group_curves[group_curves["metric"] == metric.name]
     units = _unit_order(rows)
     index = {u: i for i, u in enumerate(units)}
-    fig, (ax,) = new_figure(width=max(4.8, 0.45 * len(units) + 3.0))
+    fig, (ax,) = new_figure(width=max(4.8, 0.45 * len(units) + 3.0), height=3.8)
+    mine = None if curves is None else curves[curves["metric"] == metric.name]
     for i, (group, part) in enumerate(rows.groupby("group", sort=True)):
         x = np.array([index[(s, b)] for s, b in zip(part["session"], part["block"])])
         order = np.argsort(x)
         x, part = x[order], part.iloc[order]
-        ax.plot(x, part["participant_mean"], marker="o", linewidth=0.8, color=colour(i),
-                label=f"{group}: mean of participants")
+        values = None if mine is None else _participant_grid(mine[mine["group"] == group], units)
+        if values is not None:
+            ax.plot(np.arange(len(units)), values.T * scale, color=colour(i), linewidth=0.5, alpha=0.35)
         fitted = part["mean"].notna().to_numpy()
+        ax.plot(x, part["participant_mean"] * scale, marker="o", linewidth=2.0, color=colour(i),
+                label=f"{group}: mean of participants")
         if fitted.any():
-            ax.plot(x[fitted], part["mean"][fitted], linewidth=2.0, color=colour(i),
-                    label=f"{group}: model, {HDI_PROB:.0%} HDI per block (unadjusted)")
-            ax.fill_between(x[fitted], part["hdi_low"][fitted], part["hdi_high"][fitted], color=colour(i),
-                            alpha=0.25, linewidth=0)
+            ax.fill_between(x[fitted], part["hdi95_low"][fitted] * scale, part["hdi95_high"][fitted] * scale,
+                            color=colour(i), alpha=0.25, linewidth=0,
+                            label=f"{group}: model, {HDI_PROB:.0%} HDI per block (unadjusted)")
+        elif values is not None and len(values) > 1:
+            low, high = _bootstrap_band(values, child_rng(seed, "curve", metric.name, str(group)))
+            ax.fill_between(np.arange(len(units)), low * scale, high * scale, color=colour(i), alpha=0.25,
+                            linewidth=0, label=f"{group}: 95% bootstrap interval over participants")
+    for value, words in ((chance, "chance"), (ceiling, "source's ceiling")):
+        if value is not None and np.isfinite(value):
+            ax.axhline(value * scale, color="0.35", linestyle="--", linewidth=1)
+            ax.annotate(words, (1.0, value * scale), xycoords=("axes fraction", "data"), ha="right",
+                        va="top" if value == ceiling else "bottom", fontsize=9, color="0.35")
     _unit_ticks(ax, units)
+    unit = "ms" if scale != 1.0 else metric.unit
+    if metric.unit.startswith("share of"):
+        ax.set_ylim(0, 1.02)
     if metric.log:
         ax.set_yscale("log")
-    ax.set_ylabel(f"{metric.name} ({metric.unit})")
+        plain_log_ticks(ax.yaxis, *ax.get_ylim())
+    ax.set_ylabel(f"{METRIC_WORDS.get(metric.name, metric.title)} ({unit})")
     ax.set_title(f"{metric.title} by block")
-    ax.legend(fontsize="small")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     return fig
+
+
+def _participant_grid(values: pd.DataFrame, units: Sequence[tuple[str, str]]) -> np.ndarray | None:
+    """Return participants x units of the metric's values (NaN where a participant has none), or None."""
+    if values.empty:
+        return None
+    grid = values.pivot_table(index="participant", columns=["session", "block"], values="value", aggfunc="first")
+    return grid.reindex(columns=pd.MultiIndex.from_tuples(list(units))).to_numpy(dtype=float)
+
+
+def _bootstrap_band(values: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Return the 95% percentile bootstrap interval of the mean over participants (rows), per unit (column)."""
+    draws = rng.integers(0, len(values), size=(BOOTSTRAP_REPLICATES, len(values)))
+    with np.errstate(all="ignore"):
+        means = np.nanmean(values[draws], axis=1)
+    return np.nanpercentile(means, 2.5, axis=0), np.nanpercentile(means, 97.5, axis=0)
 
 
 def context_figure(table: pd.DataFrame) -> Figure:

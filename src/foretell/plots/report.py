@@ -13,11 +13,17 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from foretell.labels import ALL, ROOT
-from foretell.plots.common import HEATMAP, colour, new_figure, text_colour
+from foretell.plots.common import HEATMAP, colour, new_figure, plain_log_ticks, text_colour
 from foretell.text import number
 
 STRENGTH_SHORT = {"bare-mention": "bare", "positive": "pos.", "strong": "strong", "very-strong": "v. strong"}
 """Cell text of each Kass-Raftery strength grade in the winners heatmap."""
+
+PAGE_WIDTH = 7.4
+"""Inches of the widest report figure: at 150 dpi it is shown at its natural size in the report's column."""
+
+GRADED = ("positive", "strong", "very-strong")
+"""Strength grades that name a winner (Kass & Raftery, 1995: more than a bare mention)."""
 
 
 def winners_heatmap(winners: pd.DataFrame) -> Figure:
@@ -26,42 +32,59 @@ def winners_heatmap(winners: pd.DataFrame) -> Figure:
     Parameters
     ----------
     winners : pandas.DataFrame
-        The winners table of the fits (participant, session, block,
+        The winners table of the fits (participant, group, session, block,
         best_model, strength; block ``all`` is the whole session, drawn last).
 
     Returns
     -------
     matplotlib.figure.Figure
-        One row per participant, one column per block; grey where no model
-        won. Strength grades after Kass & Raftery (1995), shortened by
-        :data:`STRENGTH_SHORT`.
+        One row per participant, grouped by group (a line and the group's
+        name between groups), one column per block, the whole session set
+        apart by a gap. A cell is coloured by its best model only when the
+        lead is at least positive (:data:`GRADED`, Kass & Raftery, 1995);
+        a bare lead or no winner is grey. Grades shortened by :data:`STRENGTH_SHORT`.
     """
     table = winners.assign(unit=_unit_labels(winners))
     units = list(dict.fromkeys(u for u in table["unit"] if u != "whole session")) + ["whole session"]
-    people = list(dict.fromkeys(table["participant"]))
-    models = sorted(table["best_model"].dropna().unique())
+    groups = table["group"].astype(str) if "group" in table.columns else pd.Series("", index=table.index)
+    order = table.assign(_group=groups).drop_duplicates("participant")[["participant", "_group"]]
+    order = order.sort_values("_group", kind="stable")
+    people, member = list(order["participant"]), list(order["_group"])
+    named = table[table["strength"].isin(GRADED)]
+    models = sorted(named["best_model"].dropna().unique())
     code = {m: i for i, m in enumerate(models)}
     grid = np.full((len(people), len(units)), np.nan)
     text = np.full(grid.shape, "n/a", dtype=object)
     for row in table.itertuples(index=False):
         i, j = people.index(row.participant), units.index(row.unit)
         if isinstance(row.best_model, str):
-            grid[i, j] = code[row.best_model]
             text[i, j] = STRENGTH_SHORT.get(str(row.strength), str(row.strength))
-    fig, (ax,) = new_figure(width=max(4.5, 0.9 * len(units) + 3.0), height=max(2.8, 0.32 * len(people) + 1.6))
+            if row.strength in GRADED:
+                grid[i, j] = code[row.best_model]
+    fig, (ax,) = new_figure(width=min(PAGE_WIDTH, max(4.5, 0.8 * len(units) + 3.2)),
+                            height=max(2.8, 0.3 * len(people) + 1.8))
     palette = ListedColormap([colour(i) for i in range(max(len(models), 1))]).with_extremes(bad="0.85")
     ax.imshow(np.ma.masked_invalid(grid), cmap=palette, vmin=-0.5, vmax=max(len(models), 1) - 0.5,
               aspect="auto", interpolation="nearest")
     for (i, j), label in np.ndenumerate(text):
         shade = colour(int(grid[i, j])) if np.isfinite(grid[i, j]) else "#D9D9D9"
-        ax.text(j, i, label, ha="center", va="center", fontsize="x-small", color=text_colour(shade))
+        ax.text(j, i, label, ha="center", va="center", fontsize=7.5, color=text_colour(shade))
+    ax.axvline(len(units) - 1.5, color="white", linewidth=6)
+    for i in range(1, len(people)):
+        if member[i] != member[i - 1]:
+            ax.axhline(i - 0.5, color="black", linewidth=1.5)
+    for name in dict.fromkeys(member):
+        rows = [i for i, g in enumerate(member) if g == name]
+        if name:
+            ax.text(len(units) - 0.4, float(np.mean(rows)), name, rotation=-90, ha="left", va="center", fontsize=9)
     ax.set_xticks(range(len(units)), units, rotation=30, ha="right")
     ax.set_yticks(range(len(people)), people)
     ax.set_xlabel("block")
     ax.set_ylabel("participant")
     ax.set_title("Best model per participant and block")
-    ax.legend(handles=[Patch(color=colour(code[m]), label=m) for m in models], title="best model",
-              fontsize="small", loc="upper left", bbox_to_anchor=(1.02, 1.0))
+    ax.legend(handles=[Patch(color=colour(code[m]), label=m) for m in models]
+              + [Patch(color="#D9D9D9", label="no winner")], title="best model",
+              fontsize=8, title_fontsize=9, loc="upper left", bbox_to_anchor=(1.08, 1.0))
     return fig
 
 
@@ -72,8 +95,9 @@ def _unit_labels(table: pd.DataFrame) -> list[str]:
             for s, b in zip(table["session"], table["block"])]
 
 
-def tree_figure(contexts: Sequence[str], shares: Mapping[str, object], *, title: str) -> Figure:
-    """Return a node-link drawing of the context tree whose leaves are ``contexts``.
+def tree_figure(contexts: Sequence[str], shares: Mapping[str, object], *, title: str,
+                probs: Mapping[str, str] | None = None) -> Figure:
+    """Return a node-link drawing of the context tree whose leaves are ``contexts``, sized for the page.
 
     Parameters
     ----------
@@ -84,14 +108,18 @@ def tree_figure(contexts: Sequence[str], shares: Mapping[str, object], *, title:
         and optionally ``model_*`` shares; empty to draw the bare tree.
     title : str
         The figure's title.
+    probs : mapping of str to str, optional
+        Per leaf, its next-symbol probabilities in words, written under it.
 
     Returns
     -------
     matplotlib.figure.Figure
-        Root '*' at the top; a child prepends an older symbol. A leaf with
-        shares is coloured by the share of participants that distinguish it
-        (cividis) and annotated "D / M / S" with the winning models' shares in
-        brackets.
+        Root '*' at the top; a child prepends an older symbol. Each node is
+        labelled beside it, one symbol per line (oldest first), on a white
+        ground that no edge crosses. A leaf with shares is coloured by the
+        share of participants that distinguish it (cividis) and annotated
+        "D / M / S" (the winning models' shares are in the report's table). At most
+        :data:`PAGE_WIDTH` inches wide.
     """
     leaves = [tuple(c.split("-")) if c != ROOT else () for c in contexts]
     nodes = {leaf[i:] for leaf in leaves for i in range(len(leaf) + 1)}
@@ -113,41 +141,83 @@ def tree_figure(contexts: Sequence[str], shares: Mapping[str, object], *, title:
 
     width = place((), 0.0)
     depth = max((len(n) for n in nodes), default=0)
-    fig, (ax,) = new_figure(width=max(4.0, 2.3 * width), height=1.5 * depth + 2.2)
+    notes = bool(shares) or bool(probs)
+    fig, (ax,) = new_figure(width=min(PAGE_WIDTH, max(4.0, 1.1 * width + 1.5)),
+                            height=(1.6 if notes else 1.2) * depth + 1.6)
     cmap = colormaps[HEATMAP]
     for node in nodes:
         for kid in children.get(node, []):
-            ax.plot([position[node], position[kid]], [-len(node), -len(kid)], color="0.5", linewidth=1, zorder=1)
-            ax.text((position[node] + position[kid]) / 2, -(len(node) + len(kid)) / 2, f" {kid[0]}",
-                    fontsize="small", color="0.35", ha="left", va="center")
+            ax.plot([position[node], position[kid]], [-len(node), -len(kid)], color="0.6", linewidth=1, zorder=1)
+    ground = {"facecolor": "white", "edgecolor": "none", "pad": 0.6}
     for node in nodes:
         label = "-".join(node) if node else ROOT
         row = shares.get(label)
         face = "white" if row is None else cmap(float(getattr(row, "distinguished")))
-        ax.scatter([position[node]], [-len(node)], s=420, color=face, edgecolors="black", zorder=2)
-        ax.text(position[node], -len(node) + 0.28, label, ha="center", va="bottom", fontsize="small")
-        if row is not None:
-            ax.text(position[node], -len(node) - 0.28, _leaf_text(row), ha="center", va="top", fontsize="x-small")
-    ax.set_xlim(-0.8, width - 0.2)
-    ax.set_ylim(-depth - 1.1, 0.8)
+        ax.scatter([position[node]], [-len(node)], s=160, color=face, edgecolors="black", zorder=2)
+        ax.text(position[node] + 0.09, -len(node) + 0.06, "\n".join(node) if node else ROOT, ha="left",
+                va="bottom", fontsize=9, zorder=3, bbox=ground, linespacing=1.0)
+        below = [text for text in ((probs or {}).get(label), None if row is None else _leaf_text(row)) if text]
+        if below:
+            ax.text(position[node], -len(node) - 0.12, "\n".join(below), ha="center", va="top", fontsize=9,
+                    zorder=3, bbox=ground, linespacing=1.05)
+    ax.set_xlim(-0.6, width - 0.2)
+    ax.set_ylim(-depth - (1.0 if notes else 0.4), 0.9)
     ax.set_yticks([-d for d in range(depth + 1)], [str(d) for d in range(depth + 1)])
-    ax.set_ylabel("context length (symbols back)")
+    ax.set_ylabel("symbols back")
     ax.set_xticks([])
     for side in ("top", "right", "bottom"):
         ax.spines[side].set_visible(False)
     ax.set_title(title)
     if shares:
-        fig.colorbar(ScalarMappable(Normalize(0, 1), cmap), ax=ax,
-                     label="share of participants distinguishing it")
+        fig.colorbar(ScalarMappable(Normalize(0, 1), cmap), ax=ax, label="share distinguishing it")
     return fig
 
 
 def _leaf_text(row: object) -> str:
-    parts = []
-    for short, key in (("D", "distinguished"), ("M", "merged"), ("S", "split_deeper")):
-        text = f"{short} {number(float(getattr(row, key)), '.2f')}"
-        model = getattr(row, f"model_{key}", None)
-        if model is not None and not pd.isna(model):
-            text += f" ({number(float(model), '.2f')})"
-        parts.append(text)
-    return "\n".join(parts)
+    """Return "D 0.43\nM 0.57\nS 0.00": the shares of participants by status."""
+    return "\n".join(f"{short} {number(float(getattr(row, key)), '.2f')}"
+                     for short, key in (("D", "distinguished"), ("M", "merged"), ("S", "split_deeper")))
+
+
+def parameters_figure(fits: pd.DataFrame, winners: pd.DataFrame) -> Figure:
+    """Return each participant's fitted choice parameters under their own best model, by group.
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        The fits table (participant, group, model, inv_temp, lapse, at_bound).
+    winners : pandas.DataFrame
+        The winners table: each participant's whole-session best model
+        picks the fit shown (participants without one are left out).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One panel per parameter (inverse temperature on a log axis with
+        plain ticks, lapse); one dot per participant, groups side by side in
+        their colours with their median as a bar; a hollow dot is a value at
+        a fit bound (a limit of what the data tell, not an estimate).
+    """
+    best = winners[(winners["block"] == ALL) & winners["best_model"].notna()][["participant", "best_model"]]
+    shown = fits.merge(best.rename(columns={"best_model": "model"}), on=["participant", "model"])
+    groups = sorted(shown["group"].astype(str).unique())
+    fig, axes = new_figure(2, width=3.4, height=3.4)
+    for ax, name, label in zip(axes, ("inv_temp", "lapse"), ("inverse temperature", "lapse rate")):
+        for i, group in enumerate(groups):
+            part = shown[shown["group"].astype(str) == group]
+            values = part[name].to_numpy(dtype=float)
+            at = part["at_bound"].fillna("").astype(str).str.contains(name).to_numpy()
+            x = i + np.linspace(-0.25, 0.25, len(values)) if len(values) > 1 else np.full(len(values), float(i))
+            ax.scatter(x[~at], values[~at], s=16, color=colour(i))
+            ax.scatter(x[at], values[at], s=16, facecolors="none", edgecolors=colour(i))
+            if len(values):
+                ax.hlines(np.median(values), i - 0.35, i + 0.35, color="black", linewidth=1.5)
+        ax.set_xticks(range(len(groups)), groups)
+        ax.set_xlim(-0.6, len(groups) - 0.4)
+        ax.set_title(label)
+        if name == "inv_temp":
+            ax.set_yscale("log")
+            plain_log_ticks(ax.yaxis, *ax.get_ylim())
+    axes[0].set_ylabel("value under the participant's best model")
+    fig.suptitle("Fitted choice parameters (bar: group median; hollow: at a bound)", fontsize=10)
+    return fig

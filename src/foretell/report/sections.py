@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import pandas as pd
 
+from foretell.findings import findings, permutation_count
 from foretell.labels import ALL
-from foretell.report.layout import (Figures, Section, Source, Table, absent, cell, diagnostics_table, lines,
-                                    provisional_line, table)
+from foretell.plots.rt import slopes_figure
+from foretell.report.layout import (SELECTION_COLUMNS, Figures, Section, Source, Table, absent, cell,
+                                    diagnostics_table, lines, provisional_line, step_settings, table)
+from foretell.summaries import HOLM_ALPHA, METRIC_WORDS, contrast_words
 from foretell.text import number, plural
-
-HOLM_ALPHA = 0.05
-"""Family-wise level at which a Holm-corrected permutation p is counted as a difference (common practice)."""
 
 
 def data_section(source: Source) -> Section:
@@ -90,7 +90,8 @@ def curves_section(source: Source, figures: Figures, provisional: bool) -> Secti
     group_curves = source.table("groups/group_curves")
     diagnostics = source.table("groups/group_diagnostics")
     bayes = diagnostics is not None and len(diagnostics) > 0
-    paragraphs = list(provisional_line(provisional and bayes))
+    called = bayes and bool(diagnostics["ok"].astype("boolean").fillna(False).any())
+    paragraphs = list(provisional_line(provisional and called))  # only a called model rests on the short chains
     shown = []
     if group_curves is not None and len(group_curves):
         for metric in dict.fromkeys(group_curves["metric"]):
@@ -104,15 +105,19 @@ def curves_section(source: Source, figures: Figures, provisional: bool) -> Secti
                       "line is the source's probability of that symbol."))
     effects, joint = source.table("groups/group_effects"), source.table("groups/group_joint")
     paragraphs += _adjusted_lines(effects, joint)
-    tables = _group_tables(effects, joint, bayes)
-    if bayes and effects is not None and len(effects):
+    hdis = bayes and effects is not None and "diff_mean" in effects.columns and effects["diff_mean"].notna().any()
+    tables = _group_tables(effects, joint, hdis, permutation_count(source))
+    if hdis:
         paragraphs.append("Unadjusted, shown last: the hierarchical model's difference per block with its HDI, "
                           "one interval per block and no correction for looking at many blocks.")
         called = effects["called"].astype("boolean") if "called" in effects.columns else None
         if called is not None and called.notna().any() and not called.fillna(False).all():
             paragraphs.append("Where 'model called' says no, the hierarchical model failed its diagnostics: "
                               "its difference and interval are not called and are not shown.")
-    models = source.table("groups/group_models")
+    elif bayes:
+        paragraphs.append("No hierarchical group model passed its diagnostics (table below): the differences rest "
+                          "on the permutation tests and their intervals.")
+    models = _readable(source.table("groups/group_models"))
     if models is not None and len(models):
         tables.append(table(models, {
             "contrast": "contrast", "level": "level", "name": "model or family",
@@ -147,28 +152,44 @@ def _adjusted_lines(effects: pd.DataFrame | None, joint: pd.DataFrame | None) ->
     return out
 
 
-def _group_tables(effects: pd.DataFrame | None, joint: pd.DataFrame | None, bayes: bool) -> list[Table]:
-    """Return the group-difference tables: Holm-adjusted tests per block, the joint summary, the unadjusted HDIs."""
+def _readable(frame: pd.DataFrame | None) -> pd.DataFrame | None:
+    """Return a group-difference table with contrasts as "group − reference" and metrics in plain words."""
+    if frame is None or frame.empty or not {"group", "reference"} <= set(frame.columns):
+        return frame
+    frame = frame.assign(contrast=[contrast_words(g, r) for g, r in zip(frame["group"], frame["reference"])])
+    return frame.assign(metric=frame["metric"].map(lambda m: METRIC_WORDS.get(m, m))) if "metric" in frame else frame
+
+
+def _group_tables(effects: pd.DataFrame | None, joint: pd.DataFrame | None, hdis: bool,
+                  permutations: str = "") -> list[Table]:
+    """Return the group-difference tables: Holm-adjusted tests per block, the joint summary, the unadjusted HDIs.
+
+    The HDIs only when ``hdis`` (a hierarchical model gave some); ``permutations`` is said in the caption of
+    the tests (" (9,999 permutations)").
+    """
     tables = []
+    effects, joint = _readable(effects), _readable(joint)
     if effects is not None and len(effects):
         tables.append(table(effects, {
             "contrast": "contrast", "session": "session", "block": "block", "metric": "metric", "scale": "scale",
             "n_group": "n group", "n_reference": "n reference",
             "observed_diff": "observed difference (participant values)", "perm_p": "permutation p",
             "perm_p_holm": "Holm-corrected p"},
-            "Group differences per block (group minus reference): permutation tests, Holm-adjusted"))
+            f"Group differences per block: permutation tests{permutations}, Holm-adjusted",
+            {"perm_p": "p", "perm_p_holm": "p"}))
     if joint is not None and len(joint):
         tables.append(table(joint, {
             "contrast": "contrast", "metric": "metric", "summary": "summary", "scale": "scale",
             "estimate": "difference", "low": "interval low", "high": "interval high", "level": "level",
             "method": "method", "prob_positive": "P(difference > 0)", "perm_p_holm": "Holm-corrected p",
             "n_group": "n group", "n_reference": "n reference", "n_blocks": "blocks"},
-            "Group differences over all blocks (group minus reference): one interval per metric, contrast and "
-            "summary", {"level": ".2f"}))
-    if bayes and effects is not None and len(effects):
+            "Group differences over all blocks: one interval per metric, contrast and summary",
+            {"level": ".2f", "perm_p_holm": "p"}))
+    if hdis and effects is not None and len(effects):
         tables.append(table(effects, {
             "contrast": "contrast", "session": "session", "block": "block", "metric": "metric", "scale": "scale",
-            "diff_mean": "model difference (posterior mean)", "hdi_low": "HDI low", "hdi_high": "HDI high",
+            "diff_mean": "model difference (posterior mean)", "hdi95_low": "95% HDI low",
+            "hdi95_high": "95% HDI high",
             "prob_positive": "P(difference > 0)", "called": "model called"},
             "Unadjusted: the hierarchical model's group difference per block with its HDI, one interval per block "
             "and no correction for looking at many blocks (some may exclude 0 by chance); read after the "
@@ -176,52 +197,77 @@ def _group_tables(effects: pd.DataFrame | None, joint: pd.DataFrame | None, baye
     return tables
 
 
-def rt_section(source: Source, provisional: bool) -> Section:
-    """Return the section on reaction times: the model ranking, whether it is called, diagnostics.
+def rt_section(source: Source, figures: Figures, provisional: bool) -> Section:
+    """Return the section on reaction times: the verdict per group, the model ranking, diagnostics.
 
     Parameters
     ----------
     source : Source
         The analysis (its ``rt/`` result).
+    figures : Figures
+        Collects the figures shown; each participant's slopes are drawn here.
     provisional : bool
         Whether the Bayesian comparisons are provisional.
 
     Returns
     -------
     Section
+        The verdict per group is that of the random-effects selection with
+        the baseline (:func:`foretell.findings.findings`, the words of
+        :func:`foretell.summaries.verdict`); the hierarchical ranking by
+        ELPD is called only when its models passed the diagnostics gate. The
+        step's notes stay in ``rt/summary.txt``.
     """
     heading = "Reaction times"
     if not source.has("rt"):
         return absent("rt", heading, "No rt/ folder: the log has no reaction times, or the RT step was not run.")
+    items = tuple(f.text for f in findings(source) if f.anchor == "rt")
+    paragraphs = ["Which learner's uncertainty explains the reaction times? Per group, by random-effects "
+                  "selection of per-participant BIC with the baseline (time on task only):"]
+    tables = []
+    selection = source.table("rt/rt_selection")
+    if selection is not None and len(selection):
+        tables.append(table(selection, SELECTION_COLUMNS, "Random-effects selection per group, learners and the "
+                            "baseline none (whole session)"))
     compare = source.table("rt/rt_compare")
-    paragraphs, tables = [], []
+    after = []
     if compare is not None and len(compare):
-        called = compare["called"].astype("boolean").fillna(False)
-        bayes = compare["criterion"].astype(str).str.startswith("elpd").any()
-        if bayes:
-            paragraphs.extend(provisional_line(provisional))
-        if not called.any():
-            paragraphs.append("Not called: the data do not single out one model of the reaction times "
-                              "(the reasons are listed below). The ranking is shown for completeness only.")
+        elpd = compare["criterion"].astype(str).str.startswith("elpd")
+        if elpd.any() and compare["elpd_loo"].notna().any():
+            after.extend(provisional_line(provisional))
+            first = compare.sort_values("rank")
+            after.append(f"The hierarchical models ranked by PSIS-LOO over participant × block units: "
+                         f"{first['model'].iloc[0]} first"
+                         + (", called." if first["called"].astype("boolean").fillna(False).iloc[0] else
+                            ", not called (too close to the next model)."))
         else:
-            basis = "PSIS-LOO over participant x block units" if bayes else "summed BIC, margin of at least 10"
-            paragraphs.append(f"Called on {basis}: {compare.sort_values('rank')['model'].iloc[0]} ranks first.")
+            after.append(("No hierarchical model passed its diagnostics, so no ELPD ranking is called"
+                          if elpd.any() else "No hierarchical model was run") + ": the ranking below is that of "
+                         "the selection for everyone, with the summed BIC beside it for reference (no call).")
         tables.append(table(compare, {
             "model": "model", "rank": "rank", "criterion": "criterion", "bic_sum": "summed BIC",
-            "d_bic_sum": "BIC difference to the first", "elpd": "ELPD (LOO)", "se": "SE",
-            "d_elpd": "ELPD difference", "dse": "SE of difference", "weight": "weight", "called": "called",
+            "d_bic_sum": "BIC difference to the first", "elpd_loo": "ELPD (LOO)", "elpd_loo_se": "SE",
+            "elpd_diff": "ELPD difference", "elpd_diff_se": "SE of difference", "stacking_weight": "stacking weight",
+            "protected_exceedance": "protected exceedance", "omnibus_risk": "omnibus risk", "called": "called",
             "provisional": "provisional"}, "Models of the reaction times, whole session",
-            {"bic_sum": ".1f", "d_bic_sum": ".1f", "elpd": ".1f", "se": ".1f", "d_elpd": ".1f", "dse": ".1f"}))
+            {"bic_sum": ".1f", "d_bic_sum": ".1f", "elpd_loo": ".1f", "elpd_loo_se": ".1f", "elpd_diff": ".1f",
+             "elpd_diff_se": ".1f"}))
     diagnostics = source.table("rt/rt_diagnostics")
     if diagnostics is not None and len(diagnostics):
         tables.append(diagnostics_table(diagnostics, "model", "Diagnostics of the hierarchical RT models"))
-    else:
-        paragraphs.append("No hierarchical Bayesian RT model was run: models are ranked by summed BIC.")
-    return Section("rt", heading, tuple(paragraphs), lines(source.text("rt/summary.txt")), tables=tuple(tables))
+    after.append("Every note of the step (trials left out, parameterisation, sampler messages) is in rt/summary.txt.")
+    fits, shown = source.table("rt/rt_fits"), ()
+    if fits is not None and "slope_ms_per_bit" in fits.columns and fits["slope_ms_per_bit"].notna().any():
+        regressor = (step_settings(source, "rt").get("regressors") or ["entropy"])[0]
+        shown = ((figures.draw("rt_slopes", slopes_figure(fits, regressor=regressor)),
+                  f"Each participant's slope of the reaction time on each learner's {regressor}, with its 95% "
+                  "interval, by group (per-participant fits; intervals not corrected for the number of "
+                  "participants)."),)
+    return Section("rt", heading, (*after, *paragraphs), items, shown, tuple(tables))
 
 
 def events_section(source: Source) -> Section:
-    """Return the section listing the event files written for the EEG analysis.
+    """Return the section on the event files written for the EEG analysis: how many, of which kind, and where.
 
     Parameters
     ----------
@@ -231,13 +277,20 @@ def events_section(source: Source) -> Section:
     Returns
     -------
     Section
+        One paragraph: the count of files by kind and the folder; the
+        files are listed in ``events/participants.csv`` (one row per
+        participant and session), not here.
     """
     heading = "Event files"
     if not source.has("events"):
         return absent("events", heading, "No events/ folder: no event files were written.")
-    files = [name.removeprefix("events/") for name in source.files if name.startswith("events/")]
-    return Section("events", heading, (f"events/ holds {plural(len(files), 'file')} for the EEG analysis:",),
-                   tuple(files))
+    files = [name for name in source.files if name.startswith("events/")]
+    kinds = {"events.tsv": "_events.tsv", "JSON sidecar": "_events.json"}
+    counts = ", ".join(plural(sum(n.endswith(end) for n in files), kind) for kind, end in kinds.items())
+    return Section("events", heading, (
+        f"events/ holds {plural(len(files), 'file')} for the EEG analysis ({counts}), named "
+        "sub-<participant>[_ses-<session>]_task-<task>_events.tsv after BIDS; events/participants.csv maps "
+        "each participant to its BIDS label.",))
 
 
 def design_section(source: Source, figures: Figures) -> Section:

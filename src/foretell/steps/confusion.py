@@ -118,11 +118,11 @@ def confusion_table(credit: pd.DataFrame, trials: Sequence[int], labels: Sequenc
     Returns
     -------
     pandas.DataFrame
-        trials, generating_model, fitted_model, fraction, ci_low, ci_high
+        trials, generating_model, fitted_model, fraction, ci95_low, ci95_high
         (:func:`foretell.stats.intervals.clopper_pearson` on the credited
         count rounded half to even, since split credit can make it
         fractional), n; on the diagonal (fitted = generating) ``recovered``
-        (ci_low reaches :data:`TARGET_DIAGONAL`) and ``n_needed``
+        (ci95_low reaches :data:`TARGET_DIAGONAL`) and ``n_needed``
         (:func:`foretell.stats.intervals.trials_to_show`: the simulated
         participants at which the fraction, as observed, would have its lower
         bound at the target; missing when the fraction is not above it), both
@@ -135,15 +135,15 @@ def confusion_table(credit: pd.DataFrame, trials: Sequence[int], labels: Sequenc
     table = counts.reindex(grid, fill_value=0.0).rename("credit").reset_index()
     table["n"] = table.groupby(keys)["credit"].transform("sum").round().astype(int)
     table["fraction"] = table["credit"] / table["n"]
-    table["ci_low"], table["ci_high"] = clopper_pearson(table["credit"].round(), table["n"])
+    table["ci95_low"], table["ci95_high"] = clopper_pearson(table["credit"].round(), table["n"])
     diagonal = (table["generating_model"] == table["fitted_model"]) & (table["n"] > 0)
-    table["recovered"] = pd.array(np.where(diagonal, table["ci_low"] >= TARGET_DIAGONAL, None), dtype="boolean")
+    table["recovered"] = pd.array(np.where(diagonal, table["ci95_low"] >= TARGET_DIAGONAL, None), dtype="boolean")
     table["n_needed"] = pd.array([trials_to_show(f, TARGET_DIAGONAL) if d else math.nan
                                   for f, d in zip(table["fraction"], diagonal)], dtype="Int64")
     order = {g: i for i, g in enumerate(labels)}
     table = table.sort_values(["trials", "generating_model", "fitted_model"],
                               key=lambda c: c.map(order) if c.name != "trials" else c, kind="stable")
-    return table[["trials", "generating_model", "fitted_model", "fraction", "ci_low", "ci_high", "n", "recovered",
+    return table[["trials", "generating_model", "fitted_model", "fraction", "ci95_low", "ci95_high", "n", "recovered",
                   "n_needed"]].reset_index(drop=True)
 
 
@@ -240,7 +240,7 @@ def answer_text(confusion: pd.DataFrame, summary: pd.DataFrame, n_participants: 
     for trials in recovered:
         rho = summary.loc[summary["trials"] == trials, "spearman"]
         if rho.notna().all() and (rho >= TARGET_SPEARMAN).all():
-            worst = diagonal[diagonal["trials"] == trials].sort_values("ci_low", kind="stable").iloc[0]
+            worst = diagonal[diagonal["trials"] == trials].sort_values("ci95_low", kind="stable").iloc[0]
             return (head + f"{trials} trials per participant is the smallest listed count that meets both; its "
                     f"least recovered model is {_share(worst)}, its lowest rho {rho.min():.2f}. This holds only "
                     "if participants behave like these models with parameters in the simulated ranges.")
@@ -256,7 +256,7 @@ def answer_text(confusion: pd.DataFrame, summary: pd.DataFrame, n_participants: 
 def _share(row: pd.Series) -> str:
     """Return 'model (share, 95% CI low-high)' of a confusion row."""
     return (f"{row['generating_model']} ({row['fraction']:.0%}, {CI_LEVEL:.0%} CI "
-            f"{row['ci_low']:.0%}-{row['ci_high']:.0%})")
+            f"{row['ci95_low']:.0%}-{row['ci95_high']:.0%})")
 
 
 def _too_few(diagonal: pd.DataFrame, n_participants: int) -> str:
@@ -265,7 +265,7 @@ def _too_few(diagonal: pd.DataFrame, n_participants: int) -> str:
     if not above:
         return ""
     cell = diagonal[diagonal["trials"] == min(above)]
-    worst = cell.sort_values("ci_low", kind="stable").iloc[0]
+    worst = cell.sort_values("ci95_low", kind="stable").iloc[0]
     needed = int(cell["n_needed"].max())
     return (f" At {min(above)} trials every model's share is above {TARGET_DIAGONAL:.0%}, but "
             f"{n_participants} simulated participants per model are too few to show it: the lowest interval is "
@@ -283,7 +283,7 @@ def _confused(confusion: pd.DataFrame) -> str:
     if pair is not None and pair["fraction"] > 0:
         return (f" At {largest} trials the most frequent confusion is {pair['generating_model']} "
                 f"participants best fitted by {pair['fitted_model']} ({pair['fraction']:.0%}, "
-                f"{CI_LEVEL:.0%} CI {pair['ci_low']:.0%}-{pair['ci_high']:.0%}).")
+                f"{CI_LEVEL:.0%} CI {pair['ci95_low']:.0%}-{pair['ci95_high']:.0%}).")
     return f" At {largest} trials no simulated participant was best fitted by another model."
 
 

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -10,13 +9,14 @@ from typing import TYPE_CHECKING, ClassVar
 
 import numpy as np
 import pandas as pd
-from tqdm import tqdm
+
 
 from foretell.errors import UsageError
 from foretell.fitting.participants import fit_participants
 from foretell.inputs import as_task
 from foretell.logs import validate_log
 from foretell.models import ModelSpec, lookalikes, model_specs
+from foretell.progress import stage
 from foretell.results import Result
 from foretell.simulate import SpecDrawer, check_ranges, simulate_participant, spec_drawer
 from foretell.stats.intervals import CI_LEVEL
@@ -44,7 +44,7 @@ class RecoveryResult(Result):
     confusion : pandas.DataFrame
         trials, generating_model, fitted_model, fraction (credited participants
         / n: the BIC winner, ties within TIE_BIC sharing the credit, fits that
-        did not converge left out), ci_low, ci_high (Clopper-Pearson at
+        did not converge left out), ci95_low, ci95_high (Clopper-Pearson at
         CI_LEVEL on the credited count rounded half to even), n, and on the
         diagonal recovered and n_needed (:func:`foretell.steps.confusion.confusion_table`).
     inversion : pandas.DataFrame
@@ -138,7 +138,8 @@ def recover(task: object, *, models: Sequence[str] | None = None, n_participants
     n_jobs : int, default 1
         Processes of the fitter; the tables do not depend on it.
     progress : bool, optional
-        Draw a bar on stderr (None: when stderr is a terminal).
+        Cells done, on stderr (:func:`foretell.progress.shown`: True a bar on a terminal
+        and plain lines otherwise; None only on a terminal).
     ranges : mapping, optional
         Uniform ranges replacing those of :data:`foretell.simulate.DEFAULT_RANGES`.
     merge_lookalikes : bool, default False
@@ -185,10 +186,8 @@ def recover(task: object, *, models: Sequence[str] | None = None, n_participants
 
     task = as_task(task)
     plan = _Plan.make(task, models, merge_lookalikes)
-    n_participants = check_count("n_participants", n_participants)
-    counts = check_trial_counts(trial_counts, plan.warmup)
-    bounds = check_ranges(ranges)
-    seed, n_jobs = check_seed(seed), check_n_jobs(n_jobs)
+    n_participants, seed, n_jobs = check_count("n_participants", n_participants), check_seed(seed), check_n_jobs(n_jobs)
+    counts, bounds = check_trial_counts(trial_counts, plan.warmup), check_ranges(ranges)
     fitted = as_fit(fit, None, task)
     rt_check = recover_rt(task, models=[s.model_id for s in plan.specs.values()], n_participants=n_participants,
                           trial_counts=counts, n_datasets=rt_datasets, effect=rt_effect, seed=seed, n_jobs=n_jobs,
@@ -211,14 +210,13 @@ def recover(task: object, *, models: Sequence[str] | None = None, n_participants
 def _run_cells(task: Task, plan: "_Plan", drawers: Mapping[str, SpecDrawer], counts: Sequence[int],
                n_participants: int, seed: int, n_jobs: int, progress: bool | None) -> list["_Cell"]:
     """Return every cell (trial count x generating model), in order, with a progress bar."""
-    show = sys.stderr.isatty() if progress is None else bool(progress)
     cells = [(t, g) for t in counts for g in plan.labels]
     results = []
-    with tqdm(total=len(cells), desc="recovery", unit="cell", disable=not show, file=sys.stderr) as bar:
+    with stage("recover", "cells done", len(cells), progress) as bar:
         for t, g in cells:
+            bar.detail(f"{g} at {t} trials")
             results.append(_run_cell(task, plan, g, drawers[g], n_participants, t, seed, n_jobs))
-            bar.set_postfix_str(f"{g} at {t} trials")
-            bar.update()
+            bar.advance()
     return results
 
 

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, ClassVar
@@ -10,7 +9,7 @@ from typing import TYPE_CHECKING, ClassVar
 import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
-from tqdm import tqdm
+
 
 from foretell.cluster import job_count, workers_stopped
 from foretell.errors import UsageError
@@ -18,6 +17,7 @@ from foretell.inputs import as_task
 from foretell.learners.base import check_hyper
 from foretell.logs import validate_log
 from foretell.models import ModelSpec, lookalikes, model_specs
+from foretell.progress import stage
 from foretell.results import Result
 from foretell.simulate import SpecDrawer, check_ranges, spec_drawer
 from foretell.simulate_rt import EFFECT, NULLS, RTSimulation, simulate_dataset
@@ -124,7 +124,8 @@ def recover_rt(task: object, *, models: Sequence[str] | None = None, n_participa
     n_jobs : int, default 1
         Datasets analysed in parallel; the tables do not depend on it.
     progress : bool, optional
-        Draw a bar on stderr (None: when stderr is a terminal).
+        Cells done, on stderr (:func:`foretell.progress.shown`: True a bar on a terminal
+        and plain lines otherwise; None only on a terminal).
 
     Returns
     -------
@@ -198,20 +199,18 @@ class _RTPlan:
 def _run(plan: _RTPlan, counts: Sequence[int], n_datasets: int, n_jobs: int,
          progress: bool | None) -> list[dict[str, object]]:
     """Return one row per dataset (trials, generating, dataset, called), cell by cell, with a progress bar."""
-    show = sys.stderr.isatty() if progress is None else bool(progress)
     cells = [(t, g) for t in counts for g in (*plan.labels, *NULLS)]
     workers = job_count(n_jobs)
     drawers = plan.drawers()
     rows = []
-    with tqdm(total=len(cells), desc="RT design check", unit="cell", disable=not show, file=sys.stderr) as bar, \
-            workers_stopped(n_jobs):
+    with stage("recover --rt", "cells done", len(cells), progress) as bar, workers_stopped(n_jobs):
         for t, g in cells:
+            bar.detail(f"{g} at {t} trials")
             called = Parallel(n_jobs=workers)(delayed(_dataset_verdict)(plan, drawers, g, t, d)
                                               for d in range(1, n_datasets + 1))
             rows += [{"trials": t, "generating": g, "dataset": d, "called": c}
                      for d, c in enumerate(called, start=1)]
-            bar.set_postfix_str(f"{g} at {t} trials")
-            bar.update()
+            bar.advance()
     return rows
 
 

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import ClassVar
@@ -10,7 +9,7 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
-from tqdm import tqdm
+
 
 from foretell.compare import selection, selection_blocks
 from foretell.eegio import PICKS, epochs_path, evoked_bytes, header, read_epochs, require_mne, shared_channels
@@ -19,6 +18,7 @@ from foretell.folders import as_fit
 from foretell.inputs import as_log, as_task
 from foretell.labels import ALL, block_label
 from foretell.models import model_specs
+from foretell.progress import stage
 from foretell.outputs import netcdf_bytes
 from foretell.regressors import REGRESSORS, design
 from foretell.results import Result
@@ -132,7 +132,8 @@ def analyze_eeg(log: object, task: object, *, epochs: object, fit: object = None
     n_jobs : int, default 1
         Processes over participants, and for the permutation tests.
     progress : bool, optional
-        A progress bar over participants on stderr (None: when stderr is a terminal).
+        Participants fitted, on stderr (:func:`foretell.progress.shown`: True a bar on a
+        terminal and plain lines otherwise; None only on a terminal).
     locked : {"guess", "reveal"} or {"stimulus"}, optional
         The event the epochs are locked to (default the design's first event).
     regressors : sequence of str, optional
@@ -161,8 +162,7 @@ def analyze_eeg(log: object, task: object, *, epochs: object, fit: object = None
     Hauk, O. et al. (2006). NeuroImage 30, 1383-1400. Smith, N. J. & Kutas, M. (2015).
     Psychophysiology 52, 157-168. Maris, E. & Oostenveld, R. (2007). J. Neurosci. Methods 164, 177-190.
     """
-    mne = require_mne()
-    task = as_task(task)
+    mne, task = require_mne(), as_task(task)
     log = as_log(log, task)
     seed, n_jobs = check_seed(seed), check_n_jobs(n_jobs)
     n_permutations = check_count("n_permutations", n_permutations, 0)
@@ -179,11 +179,7 @@ def analyze_eeg(log: object, task: object, *, epochs: object, fit: object = None
     files, keep, times, info = _epochs_files(mne, epochs, labels, pick, n_permutations > 0)
     score = _score_mask(keep, times, window, channels, files[0][1])
     pids = list(dict.fromkeys(labels["participant"].astype(str)))
-    jobs = (delayed(_participant)(pid, [f for f in files if str(f[0]["participant"]) == pid], log, task,
-                                  specs, fitted, locked, names, keep, score) for pid in pids)
-    show = sys.stderr.isatty() if progress is None else bool(progress)
-    done = list(tqdm(Parallel(n_jobs=n_jobs, return_as="generator")(jobs), total=len(pids), disable=not show,
-                     unit="participant", desc="eeg", file=sys.stderr))
+    done = _per_participant(pids, files, (log, task, specs, fitted, locked, names, keep, score), n_jobs, progress)
     compare = pd.concat([d[1] for d in done], ignore_index=True)
     compare.insert(1, "group", compare["participant"].map(groups))
     betas = _dataset([d[0] for d in done], pids, [BASELINE, *(s.model_id for s in specs)], names, keep, times)
@@ -255,6 +251,18 @@ def _score_mask(keep: tuple[str, ...], times: np.ndarray, window, channels, path
     if unknown:
         raise InputError(Problem(f"channels {', '.join(unknown)} are not in the epochs", str(path)))
     return (np.isin(keep, chosen)[:, None] & ((times >= lo) & (times <= hi))[None, :]).ravel()
+
+
+def _per_participant(pids: list[str], files: list, shared: tuple, n_jobs: int, progress: bool | None) -> list:
+    """Return :func:`_participant` of each participant (its epochs files and ``shared``), in order, with progress."""
+    jobs = (delayed(_participant)(pid, [f for f in files if str(f[0]["participant"]) == pid], *shared)
+            for pid in pids)
+    done = []
+    with stage("eeg", "participants fitted", len(pids), progress) as bar:
+        for one in Parallel(n_jobs=n_jobs, return_as="generator")(jobs):
+            done.append(one)
+            bar.advance()
+    return done
 
 
 def _participant(pid: str, files: list, log, task, specs, fitted, locked: str, names: list[str],

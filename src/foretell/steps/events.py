@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import ClassVar
@@ -11,7 +10,6 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
-from tqdm import tqdm
 
 from foretell.cluster import batches, job_count, workers_stopped
 from foretell.errors import UsageError
@@ -19,6 +17,7 @@ from foretell.inputs import as_log, as_task
 from foretell.labels import block_label
 from foretell.logs import ValidatedLog
 from foretell.models import ModelSpec, default_models, model_specs, parse_model
+from foretell.progress import stage
 from foretell.regressors import REGRESSORS, design, kept_by_fit, regressors
 from foretell.results import Result
 from foretell.steps.bids import column_name, events_sidecar, file_labels, label_notes, sidecar_json, to_tsv
@@ -112,7 +111,8 @@ def export_events(log: object, task: object, *, fit: object = None,
     n_jobs : int, default 1
         Processes over batches of participants; the files do not depend on it.
     progress : bool, optional
-        Draw a progress bar on stderr (None: when stderr is a terminal).
+        Participants written, on stderr (:func:`foretell.progress.shown`: True a bar on a
+        terminal and plain lines otherwise; None only on a terminal).
     fixed : mapping, optional
         Learner values for models the fits do not cover (e.g. ``{"leak": 0.2}``).
     stimulus_duration : float, optional
@@ -198,13 +198,11 @@ def _run_batches(log: ValidatedLog, task: Task, specs: Sequence[ModelSpec], labe
                                            .reset_index(drop=True)),
                                    task, specs, labels, task_label, fits, fixed, stimulus_duration)
             for a, b in ranges)
-    show = sys.stderr.isatty() if progress is None else bool(progress)
     with workers_stopped(n_jobs):
         with Parallel(n_jobs=job_count(n_jobs), return_as="generator") as parallel, \
-                tqdm(total=len(sizes), disable=not show, unit="participant", desc="events",
-                     file=sys.stderr) as bar:
+                stage("events", "participants written", len(sizes), progress) as bar:
             for (a, b), out in zip(ranges, parallel(jobs)):
-                bar.update(b - a)
+                bar.advance(b - a)
                 yield out
 
 

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from functools import partial
@@ -20,6 +19,7 @@ from foretell.hierarchical.group_model import DIAGNOSTIC_COLUMNS, TRENDS, fit_gr
 from foretell.hierarchical.sampling import sampling_cores
 from foretell.inputs import as_log, as_task
 from foretell.logs import ValidatedLog
+from foretell.progress import shown, stage
 from foretell.regressors import kept_by_fit
 from foretell.results import Result
 from foretell.stats.intervals import CI_LEVEL, HDI_PROB
@@ -85,11 +85,19 @@ class GroupResult(Result):
         from foretell.plots.groups import context_figure, curve_figure
 
         shown = set(self.group_curves["metric"])
-        makers = {f"curve_{m}": partial(curve_figure, self.group_curves, METRICS[m])
+        makers = {f"curve_{m}": partial(curve_figure, self.group_curves, METRICS[m], curves=self.curves,
+                                        seed=self.settings.get("seed", 0), **self._references(m))
                   for m in self.settings.get("metrics", METRICS) if m in shown}
         if len(self.context_learning):
             makers["context_learning"] = partial(context_figure, self.context_learning)
         return makers
+
+    def _references(self, metric: str) -> dict[str, float]:
+        """Return the reference lines of a rate's curve: chance guessing (1/m) and the best the source allows."""
+        if metric not in ("accuracy", "optimal_rate"):
+            return {}
+        best = 1.0 if metric == "optimal_rate" else self.task.accuracy_ceiling() if self.task.has_source else None
+        return {"chance": 1.0 / len(self.task.symbols), "ceiling": best}
 
 
 # --------------------------------------------------------------------------- the whole comparison
@@ -100,12 +108,12 @@ def _group_curves(curves: pd.DataFrame, fitted: Sequence[pd.DataFrame]) -> pd.Da
     base = curves.groupby(["group", "session", "block", "metric"], sort=False)["value"] \
         .agg(participant_mean="mean", n_participants="count").reset_index()
     post = pd.concat(fitted, ignore_index=True) if fitted else pd.DataFrame(
-        columns=["group", "session", "block", "metric", "mean", "hdi_low", "hdi_high", "called"])
+        columns=["group", "session", "block", "metric", "mean", "hdi95_low", "hdi95_high", "called"])
     out = base.merge(post, on=["group", "session", "block", "metric"], how="left")
     out["unit"] = out["metric"].map(lambda m: METRICS[m].unit)
     out["called"] = out["called"].astype("boolean")
     columns = ["group", "session", "block", "metric", "unit", "n_participants", "participant_mean", "mean",
-               "hdi_low", "hdi_high", "called"]
+               "hdi95_low", "hdi95_high", "called"]
     order = {m: i for i, m in enumerate(METRICS)}
     out = out.assign(_m=out["metric"].map(order), _s=label_order(out["session"]), _b=label_order(out["block"]))
     return out.sort_values(["_m", "group", "_s", "_b"], kind="stable")[columns].reset_index(drop=True)
@@ -115,10 +123,10 @@ def _group_effects(perm: pd.DataFrame, fitted: Sequence[pd.DataFrame]) -> pd.Dat
     """Return the permutation tests beside the model's per-block differences, flagged as unadjusted HDIs."""
     keys = ["contrast", "session", "block", "metric"]
     post = pd.concat(fitted, ignore_index=True) if fitted else pd.DataFrame(
-        columns=[*keys, "diff_mean", "hdi_low", "hdi_high", "prob_positive", "called"])
+        columns=[*keys, "diff_mean", "hdi95_low", "hdi95_high", "prob_positive", "called"])
     out = perm.merge(post, on=keys, how="left")
     out["called"] = out["called"].astype("boolean")
-    out["hdi_adjusted"] = pd.array(np.where(out["hdi_low"].notna(), False, None), dtype="boolean")
+    out["hdi_adjusted"] = pd.array(np.where(out["hdi95_low"].notna(), False, None), dtype="boolean")
     return out
 
 
@@ -159,7 +167,8 @@ def compare_groups(log: object, task: object, *, fit: object = None, models: Seq
         The seed (or a Generator; tests and intervals: :mod:`foretell.steps.contrasts`, the model of a
         metric: ``child_int(seed, "groups", metric)``); workers, and chains in parallel.
     progress : bool, optional
-        Show progress (default: when stderr is a terminal).
+        Participants fitted and models sampled, on stderr (:func:`foretell.progress.shown`: True
+        a bar on a terminal and plain lines otherwise; None only on a terminal).
     reference : str, optional
         Default: the first group in sorted order.
     metrics : sequence of str, optional
@@ -189,7 +198,6 @@ def compare_groups(log: object, task: object, *, fit: object = None, models: Seq
     if bayes:
         draws, chains, tune = (check_count(k, v, low) for k, v, low in
                                (("draws", draws, 1), ("chains", chains, 2), ("tune", tune, 0)))
-    progress = sys.stderr.isatty() if progress is None else bool(progress)
     log, fitted, notes = _fitted(log, task, fit, models=models, seed=seed, n_jobs=n_jobs, progress=progress)
     frame = trial_frame(log)
     fits = None if fitted is None else fitted.fits.assign(  # the log's groups rule
@@ -204,8 +212,9 @@ def compare_groups(log: object, task: object, *, fit: object = None, models: Seq
     modelled = _Modelled()
     if contrasts and bayes:
         run = {"draws": draws, "chains": chains, "tune": tune, "cores": sampling_cores(chains, n_jobs),
-               "progress": progress, "gate": gate, "trend": trend, "parameterisation": parameterisation}
-        modelled = _group_models(curves, task, metrics, groups, contrasts, seed, run)
+               "progress": shown(progress) == "bar", "gate": gate, "trend": trend,  # the sampler's own bar
+               "parameterisation": parameterisation}
+        modelled = _group_models(curves, task, metrics, groups, contrasts, seed, run, progress)
         notes += modelled.notes
     elif contrasts:
         notes.append("hierarchical models not run (bayes=False): permutation tests and intervals only")
@@ -308,15 +317,27 @@ class _Modelled:
 
 
 def _group_models(curves: pd.DataFrame, task: Task, metrics: Sequence[str], groups: Sequence[str],
-                  contrasts: Sequence[tuple[str, str]], seed: int, run: Mapping[str, object]) -> _Modelled:
+                  contrasts: Sequence[tuple[str, str]], seed: int, run: Mapping[str, object],
+                  progress: bool | None) -> _Modelled:
     """Return the summaries, diagnostics rows and notes of the hierarchical model of each modelled metric."""
     out = _Modelled()
+    modelled = [m for m in metrics if METRICS[m].modelled and (METRICS[m].kind != "rate" or m == main_rate(task))]
+    with stage("groups", "models sampled", len(modelled), progress, eta=False, every=0) as bar:
+        for metric in modelled:
+            bar.detail(metric)
+            out = _group_model(out, curves, metric, groups, contrasts, seed, run)
+            bar.advance()
+    return out
+
+
+def _group_model(out: _Modelled, curves: pd.DataFrame, metric: str, groups: Sequence[str],
+                 contrasts: Sequence[tuple[str, str]], seed: int, run: Mapping[str, object]) -> _Modelled:
+    """Return ``out`` with the hierarchical model of ``metric`` added (or a note saying why there is none)."""
     gate = run["gate"]
-    for metric in (m for m in metrics if METRICS[m].modelled and (METRICS[m].kind != "rate" or m == main_rate(task))):
-        data = model_data(curves, metric, groups, kind=METRICS[metric].likelihood, log=METRICS[metric].log)
-        if len(data.groups) < 2:
-            out.notes.append(f"{metric}: no hierarchical model (fewer than two groups with values)")
-            continue
+    data = model_data(curves, metric, groups, kind=METRICS[metric].likelihood, log=METRICS[metric].log)
+    if len(data.groups) < 2:
+        out.notes.append(f"{metric}: no hierarchical model (fewer than two groups with values)")
+    else:
         fit = fit_group_model(data, contrasts, seed=child_int(seed, "groups", metric), **run)
         out.curves.append(fit.group_curves)
         out.effects.append(fit.effects)

@@ -111,7 +111,8 @@ def fit(log: object, task: object, *, models: Sequence[str | ModelSpec] | None =
     n_jobs : int, default 1
         Processes for the per-participant fits; the tables do not depend on it.
     progress : bool, optional
-        Draw a progress bar on stderr (None: when stderr is a terminal).
+        Participants fitted, on stderr (:func:`foretell.progress.shown`: True a bar on a
+        terminal and plain lines otherwise; None only on a terminal).
     free : iterable of str
         Learner parameters (``leak``, ``alpha``) fitted in every model that has them.
     fixed : mapping, optional
@@ -171,7 +172,7 @@ def fit(log: object, task: object, *, models: Sequence[str | ModelSpec] | None =
     contexts = context_report(fitted, task, max_depth=context_depth, fits=tables.fits,
                               winners=compared["winners"], n_replicates=n_replicates, seed=seed)
     summary = "\n".join([summary_text(*compared.values(), merge=merge),
-                         convergence_text(tables.fits, tables.blocks), bound_text(tables.fits)])
+                         convergence_text(tables.fits, tables.blocks), bound_text(tables.fits, compared["winners"])])
     settings = {"task": task.name, "models": [s.model_id for s in specs], "free": list(free),
                 "fixed": dict(fixed or {}), "seed": seed, "n_starts": n_starts, "criterion": criterion,
                 "context_depth": context_depth, "n_replicates": n_replicates,

@@ -7,20 +7,21 @@ from collections.abc import Sequence
 
 import numpy as np
 import pandas as pd
+from scipy.special import betainc
 
 from foretell.compare import selection, selection_blocks
 from foretell.labels import ALL
 from foretell.measure import BASELINE_MODEL, Measure
-from foretell.summaries import verdict
+from foretell.summaries import CLEAR_PXP, probability_words, verdict
 from foretell.text import plural
 from foretell.validation import child_int
 
 CRITERION = "rfx_bms_bic"
 """What the per-participant comparisons call on: random-effects BMS of -BIC/2 per participant."""
-COMPARE_COLUMNS = ("model", "rank", "criterion", "bic_sum", "d_bic_sum", "elpd", "se", "d_elpd", "dse", "p_loo",
-                   "weight", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk", "n_participants",
-                   "called", "evidence", "provisional")
-SELECTION_COLUMNS = ("group", "model", "expected_freq", "exceedance", "protected_exceedance", "bor",
+COMPARE_COLUMNS = ("model", "rank", "criterion", "bic_sum", "d_bic_sum", "elpd_loo", "elpd_loo_se", "elpd_diff",
+                   "elpd_diff_se", "p_loo", "stacking_weight", "expected_freq", "exceedance", "protected_exceedance",
+                   "omnibus_risk", "n_participants", "called", "evidence", "provisional")
+SELECTION_COLUMNS = ("group", "model", "expected_freq", "exceedance", "protected_exceedance", "omnibus_risk",
                      "freq_concentration", "n_participants", "criterion", "method", "called", "note")
 _RFX = ("expected_freq", "exceedance", "protected_exceedance")
 
@@ -71,6 +72,123 @@ def _graded(table: pd.DataFrame, keys: list[str]) -> tuple[pd.Series, pd.Series]
     return called, evidence
 
 
+HIERARCHICAL_MODELS = ("in_play", "all")
+"""Which learner models the rt step samples hierarchically: those :func:`in_play` leaves in play, or all."""
+
+
+def in_play(table: pd.DataFrame, models: Sequence[str]) -> tuple[list[str], str]:
+    """Return (the learner models the random-effects selection leaves in play, why in words).
+
+    In group ``all`` the leader is the model (or the baseline) with the
+    highest protected exceedance. Another model is told apart from it when
+    the posterior probability that the leader is the more frequent of the
+    two, P(r_lead > r_j) = 1 - I_1/2(alpha_lead, alpha_j) (the two
+    frequencies' share is Beta(alpha_lead, alpha_j) under the Dirichlet
+    posterior; Stephan et al., 2009), reaches :data:`foretell.summaries.CLEAR_PXP`.
+    In play: a learner leader and every learner not told apart from the
+    leader (the baseline joins every comparison anyway). Without a usable
+    selection every model is in play.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        :func:`rfx_selection` (group, model, protected_exceedance, freq_concentration).
+    models : sequence of str
+        The learner models, in order.
+
+    Returns
+    -------
+    (list of str, str)
+        The models in play, in the order of ``models``; the reason.
+
+    References
+    ----------
+    Stephan, K. E., Penny, W. D., Daunizeau, J., Moran, R. J., & Friston,
+    K. J. (2009). Bayesian model selection for group studies. NeuroImage
+    46, 1004-1017.
+    """
+    rows = table[table["group"] == ALL].dropna(subset=["protected_exceedance", "freq_concentration"])
+    if rows.empty:
+        return list(models), "no usable random-effects selection: every learner model in play"
+    alpha = rows.set_index("model")["freq_concentration"].astype(float)
+    lead = str(rows.loc[rows["protected_exceedance"].astype(float).idxmax(), "model"])
+    beaten = {m: 1.0 - float(betainc(alpha[lead], alpha[m], 0.5)) for m in alpha.index if m != lead}
+    kept = [m for m in models if m == lead or (m in beaten and beaten[m] < CLEAR_PXP)]
+    return kept, (f"the random-effects selection's leader {lead} and every learner it does not tell apart from "
+                  f"it (P(leader more frequent) < {CLEAR_PXP:g}; Stephan et al., 2009)")
+
+
+def same_evidence(fits: pd.DataFrame, merge: Sequence[Sequence[str]]) -> list[tuple[str, ...]]:
+    """Return ``merge`` joined with the sets of models whose BIC is the same for every participant.
+
+    Models with identical evidence split their share of a random-effects
+    selection between them (e.g. a leaky model whose leak, taken from the
+    guess fits, is 0 for everyone, and the same model without a leak), so
+    they are compared once, as look-alikes are; the first of each set, in
+    the order of ``fits``, is kept.
+
+    Parameters
+    ----------
+    fits : pandas.DataFrame
+        participant, model, bic (the per-participant fits).
+    merge : sequence of sequence of str
+        Look-alike sets already known (:func:`foretell.models.lookalikes`).
+
+    Returns
+    -------
+    list of tuple of str
+    """
+    order = list(dict.fromkeys(fits["model"].astype(str)))
+    owner = {m: m for m in order}
+
+    def root(m: str) -> str:
+        while owner[m] != m:
+            m = owner[m]
+        return m
+
+    def join(a: str, b: str) -> None:
+        ra, rb = sorted((root(a), root(b)), key=order.index)
+        owner[rb] = ra
+
+    for members in merge:
+        present = [m for m in members if m in owner]
+        for other in present[1:]:
+            join(present[0], other)
+    bic = fits.pivot_table(index="participant", columns="model", values="bic", aggfunc="first", dropna=False)
+    for i, a in enumerate(order):
+        for b in order[i + 1:]:
+            if a in bic and b in bic and root(a) != root(b) and bic[a].notna().any() and np.allclose(
+                    bic[a].to_numpy(float), bic[b].to_numpy(float), rtol=0.0, atol=1e-9, equal_nan=True):
+                join(a, b)
+    sets: dict[str, list[str]] = {}
+    for m in order:
+        sets.setdefault(root(m), []).append(m)
+    return [tuple(members) for members in sets.values() if len(members) > 1]
+
+
+def ranking_text(compare: pd.DataFrame) -> str:
+    """Return the ranking of ``compare`` for the console: one line per model, the columns that hold numbers.
+
+    Model, rank, the random-effects columns (protected exceedance, expected
+    frequency), summed BIC to the lowest, the ELPD difference and its SE when
+    the hierarchical comparison ran, participants and the evidence word;
+    probabilities to three decimals, never rounded onto 0 or 1.
+    """
+    shown = ["model", "rank", "protected_exceedance", "expected_freq", "d_bic_sum", "elpd_diff", "elpd_diff_se",
+             "n_participants", "evidence"]
+    table = compare[[c for c in shown if c in compare.columns and compare[c].notna().any()]].copy()
+    for column in ("protected_exceedance", "expected_freq"):
+        if column in table:
+            table[column] = [probability_words(v) for v in table[column]]
+    for column in ("d_bic_sum", "elpd_diff", "elpd_diff_se"):
+        if column in table:
+            table[column] = table[column].map(lambda v: "" if pd.isna(v) else f"{v:.1f}")
+    if "rank" in table:
+        table["rank"] = table["rank"].map(lambda v: "" if pd.isna(v) else str(int(v)))
+    return table.rename(columns={"protected_exceedance": "prot_exceedance", "n_participants": "n"}).to_string(
+        index=False)
+
+
 def verdict_words(table: pd.DataFrame) -> list[str]:
     """Return one line per group of the selection table: its verdict, and what it says of the learners."""
     lines = []
@@ -104,7 +222,7 @@ def compare_table(fits: pd.DataFrame, chosen: pd.DataFrame) -> pd.DataFrame:
     bic = usable.groupby("model", sort=False)["bic"].sum()
     rows = chosen[chosen["group"] == ALL]
     called, evidence = _graded(rows, ["group"])
-    rows = rows.assign(called=called, evidence=evidence, omnibus_risk=rows["bor"]).set_index("model")
+    rows = rows.assign(called=called, evidence=evidence).set_index("model")
     table = pd.DataFrame({"model": bic.index, "bic_sum": bic.to_numpy(), "d_bic_sum": bic.to_numpy() - bic.min()})
     for column in (*_RFX, "omnibus_risk", "called", "evidence"):
         table[column] = rows[column].reindex(table["model"]).to_numpy()
@@ -114,7 +232,8 @@ def compare_table(fits: pd.DataFrame, chosen: pd.DataFrame) -> pd.DataFrame:
     table["rank"] = np.arange(1, len(table) + 1)
     table["criterion"] = CRITERION
     table["called"] = table["called"].fillna(False).astype(bool)
-    for column in ("elpd", "se", "d_elpd", "dse", "p_loo", "weight"):
+    table["evidence"] = table["evidence"].fillna("look-alike")  # compared once, as the model it equals
+    for column in ("elpd_loo", "elpd_loo_se", "elpd_diff", "elpd_diff_se", "p_loo", "stacking_weight"):
         table[column] = math.nan
     table["provisional"] = False
     return table[list(COMPARE_COLUMNS)]
@@ -166,8 +285,8 @@ def rank_blocks(rows: pd.DataFrame, chosen: Measure, seed: int, merge: Sequence[
     picked = selection_blocks(rows.rename(columns={"bic": "bic_block"}).assign(group=pd.NA), by_group=False,
                               merge=merge, method="variational", seed=child_int(seed, "rt", "blocks"))
     picked["called"], picked["evidence"] = _graded(picked, ["session", "block"])
-    out = out.merge(picked[["session", "block", "model", *_RFX, "bor", "called", "evidence"]], on=keys, how="left")
-    out = out.rename(columns={"bor": "omnibus_risk"})
+    out = out.merge(picked[["session", "block", "model", *_RFX, "omnibus_risk", "called", "evidence"]], on=keys,
+                    how="left")
     out["criterion"] = CRITERION
     out["called"] = out["called"].fillna(False).astype(bool)
     out["order"] = out.groupby(["session", "block"], sort=False).ngroup()

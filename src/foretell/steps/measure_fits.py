@@ -78,7 +78,8 @@ def participant_path(batch: tuple[ValidatedLog, Measure], path: Path
     honest: dict[tuple[str, str], tuple[float, int]] = {}
 
     def score(pid: str, model: str, candidates: Sequence[Mapping[str, np.ndarray]]) -> np.ndarray:
-        return honest_leak(chosen.design(spans[pid], candidates), len(chosen.columns), path.bootstrap,
+        designs = chosen.design(spans[pid], candidates, within_block=True)
+        return honest_leak(designs, len(chosen.columns), path.bootstrap,
                            child_rng(path.seed, "leak", pid, model), honest, (pid, model))
 
     table = trial_regressors(log, path.task, path.specs, fixed=path.fixed, fits=path.fits, score=score)
@@ -98,10 +99,16 @@ def honest_leak(designs: Designs, n_regressors: int, bootstrap: int, rng: np.ran
                 out: dict, key: tuple[str, str]) -> np.ndarray:
     """Return the held-out score of each candidate leak; store the slope's bootstrap SE that repeats the choice.
 
-    The trials are centred within their session x block (its level is the
-    block's intercept, not predicted), and each block is predicted from the
-    others (:func:`foretell.stats.heldout.held_out_loglik`; a participant
-    with one block is cut into :data:`ONE_BLOCK_PARTS` consecutive parts).
+    ``designs`` are the within-block designs (:meth:`Measure.design` with
+    ``within_block``: the regressors, log trial and, in guess designs,
+    prev_correct). The trials are centred within their session x block (its
+    level is the block's intercept, not predicted), and each block is
+    predicted from the others (:func:`foretell.stats.heldout.held_out_loglik`;
+    a participant with one block is cut into :data:`ONE_BLOCK_PARTS`
+    consecutive parts). Not the session-wide spline of log trial: fitted
+    without a block, its basis functions local to that block are barely
+    determined, and their extrapolation would swamp the leak's effect on the
+    held-out score.
     The leak with the highest score is used; ``out[key]`` = (the standard
     deviation of the main slope over ``bootstrap`` moving-block resamples
     that choose the leak again, the block length), the block length being

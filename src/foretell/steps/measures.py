@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import ClassVar
@@ -26,13 +25,14 @@ from foretell.logs import ValidatedLog
 from foretell.measure import BASELINE_MODEL, BASELINE_WORDS, DROP_REASONS, TRIAL_SPLINE_DF, Measure, \
     choose_measure, participant_spans
 from foretell.models import ModelSpec, lookalikes, model_specs
+from foretell.progress import shown, stage
 from foretell.outputs import netcdf_bytes
 from foretell.regressors import design, kept_by_fit, stack_tables
 from foretell.results import Result
-from foretell.steps.measure_calls import (bic_words, block_words, compare_table, merge_elpd,
-                                          rank_blocks, rfx_selection, verdict_words)
+from foretell.steps.measure_calls import (HIERARCHICAL_MODELS, bic_words, block_words, compare_table, in_play,
+                                          merge_elpd, rank_blocks, rfx_selection, same_evidence, verdict_words)
 from foretell.steps.measure_fits import LEAK_BOOTSTRAP, Path, participant_path
-from foretell.validation import check_count, check_n_jobs, check_seed, child_int
+from foretell.validation import check_count, check_n_jobs, check_option, check_seed, child_int
 
 LOO_REFITS = 10
 """Most exact leave-one-unit-out refits per model when PSIS-LOO's Pareto k is too high (each is a
@@ -51,7 +51,7 @@ class RTResult(Result):
     fits : pandas.DataFrame
         Participant x model (and the baseline ``none``): OLS and Huber fits on the kept trials.
     compare : pandas.DataFrame
-        The model ranking: by ELPD when the hierarchical models ran, else by
+        The model ranking: by ELPD when the hierarchical models were compared by PSIS-LOO (``loo``), else by
         random-effects selection over participants.
     selection : pandas.DataFrame
         Group x model: random-effects selection of per-participant BIC, ``all`` and each group.
@@ -128,21 +128,18 @@ def analyze_rt(log: object, task: object, *, fit: object = None, models: Sequenc
                measure: str | pd.Series | np.ndarray = "rt", locked: str | None = None,
                regressors: Sequence[str] | None = None, fixed: Mapping[str, float] | None = None,
                baseline: str | Sequence[str] | None = None, log_transform: bool | None = None,
-               block_start: int | None = None, bootstrap: int = LEAK_BOOTSTRAP, bayes: bool = True,
+               block_start: int | None = None, bootstrap: int | None = None, bayes: bool = True,
                draws: int = 1000, chains: int = 4, tune: int = 1000,
                parameterisation: str | Mapping[str, str] = "auto", gate: Gate = Gate(),
-               refits: int | None = None) -> RTResult:
+               refits: int | None = None, hierarchical_models: str = "in_play", loo: bool = False) -> RTResult:
     """Return the :class:`RTResult` of explaining a per-trial measure by each learner model.
 
-    Every model holds a time-on-task baseline, and the baseline alone
-    (model ``none``) joins every comparison: a learner is called only when
-    it beats the baseline and the other learners. Per participant:
-    :mod:`foretell.steps.measure_fits`; across participants and block by
-    block, random-effects selection: :mod:`foretell.steps.measure_calls`;
-    with ``bayes``, hierarchical models compared by PSIS-LOO:
-    :func:`foretell.hierarchical.measure_fit.fit_measure_models`. The
-    tables do not depend on ``n_jobs`` or on a Dask cluster
-    (:func:`foretell.cluster.job_backend`).
+    Every model holds a time-on-task baseline, and the baseline alone (model ``none``) joins every
+    comparison: a learner is called only when it beats the baseline and the other learners. Per
+    participant: :mod:`foretell.steps.measure_fits`; across participants and block by block,
+    random-effects selection: :mod:`foretell.steps.measure_calls`; with ``bayes``, hierarchical models:
+    :func:`foretell.hierarchical.measure_fit.fit_measure_models`. The tables do not depend on ``n_jobs``
+    or on a Dask cluster (:func:`foretell.cluster.job_backend`).
 
     Parameters
     ----------
@@ -153,24 +150,28 @@ def analyze_rt(log: object, task: object, *, fit: object = None, models: Sequenc
     models : sequence of str or ModelSpec, optional
         Default: the models of ``fit``, else the task's default set.
     seed, n_jobs, progress : int, int, bool; default 0, 1, None
-        The seed (or a Generator); workers and parallel chains; the samplers' progress (None: on a terminal).
+        The seed (or a Generator); workers and parallel chains; participants fitted and models sampled
+        on stderr (:func:`foretell.progress.shown`: True a bar on a terminal and plain lines otherwise).
     measure : str, pandas.Series or numpy.ndarray, default "rt"
         "rt" (seconds), a numeric column of the log, or values aligned with its rows (named "measure").
     locked, regressors, log_transform, block_start
         See :func:`foretell.measure.choose_measure` (``regressors`` is its ``names``).
     fixed : mapping, optional
-        Held learner values (:func:`foretell.regressors.learner_values`); a
-        free leak none gives is fitted to the guesses (guess designs) or
-        chosen on held-out blocks (reaction designs).
+        Held learner values (:func:`foretell.regressors.learner_values`); a free leak none gives is fitted
+        to the guesses (guess designs) or chosen on held-out blocks (reaction designs).
     baseline : str or sequence of str, optional
         Time-on-task terms (:func:`foretell.measure.baseline_terms`).
-    bootstrap : int, default :data:`~foretell.steps.measure_fits.LEAK_BOOTSTRAP`
-        Resamples behind the interval of a leak chosen on the measure (0: none).
+    bootstrap : int, optional
+        Resamples behind the interval of a leak chosen on the measure (0: none; default :data:`LEAK_BOOTSTRAP`).
     bayes, draws, chains, tune : bool and int, default True, 1000, 4, 1000
         Run the hierarchical models; per chain; chains >= 2 (R-hat compares chains; Vehtari et al., 2021).
     parameterisation, gate, refits : str or mapping, Gate, int; default "auto", Gate(), :data:`LOO_REFITS`
         :func:`foretell.hierarchical.forms.requested_forms` of "intercept" and "slope"; the diagnostics
         gate; most exact leave-one-out refits per model.
+    hierarchical_models, loo : {"in_play", "all"}, bool; default "in_play", False
+        The learners sampled beside the baseline: those the random-effects selection leaves in play
+        (:func:`foretell.steps.measure_calls.in_play`), or all; with ``loo``, compare them by PSIS-LOO over
+        participant x block units, with exact refits (same compiled model) where Pareto k is too high.
 
     Returns
     -------
@@ -185,11 +186,12 @@ def analyze_rt(log: object, task: object, *, fit: object = None, models: Sequenc
     log = as_log(log, task, measures=(measure,) if isinstance(measure, str) and measure != "rt" else ())
     seed, n_jobs = check_seed(seed), check_n_jobs(n_jobs)
     refits = LOO_REFITS if refits is None else check_count("refits", refits, 0)
-    bootstrap = check_count("bootstrap", bootstrap, 0)
+    bootstrap = LEAK_BOOTSTRAP if bootstrap is None else check_count("bootstrap", bootstrap, 0)
     if bayes:
         draws, chains, tune = (check_count(k, v, low) for k, v, low in
                                (("draws", draws, 1), ("chains", chains, 2), ("tune", tune, 0)))
     forms = requested_forms(parameterisation, HIERARCHICAL)
+    check_option("hierarchical_models", hierarchical_models, HIERARCHICAL_MODELS)
     fitted = as_fit(fit, log, task)
     name, values = _values(log, measure)
     keep, notes = kept_by_fit(log, fitted.excluded if fitted is not None else None)
@@ -200,35 +202,55 @@ def analyze_rt(log: object, task: object, *, fit: object = None, models: Sequenc
                             log_transform=log_transform, block_start=block_start, baseline=baseline)
     fits, more = _learner_fits(log, task, specs, fitted.fits if fitted is not None else None, fixed, seed, n_jobs)
     path = Path(task, tuple(specs), fixed, fits, seed, bootstrap)
-    table, fits_table, block_rows = _per_participant(log, chosen, path, n_jobs)
+    table, fits_table, block_rows = _per_participant(log, chosen, path, n_jobs, progress)
     selection, compare, blocks, more = _compared(fits_table, block_rows, chosen, specs, seed, bootstrap, more)
     notes += _drop_notes(chosen, log.frame) + more
     diagnostics, population, posteriors = (pd.DataFrame(columns=DIAGNOSTIC_COLUMNS),
                                            pd.DataFrame(columns=POPULATION_COLUMNS), {})
     if bayes:
         run = {"draws": draws, "chains": chains, "tune": tune, "cores": sampling_cores(chains, n_jobs),
-               "progress": sys.stderr.isatty() if progress is None else bool(progress)}
-        columns = {c: table[c].to_numpy() for c in (*chosen.columns, "leak", "alpha", "params_from")}
-        posteriors, diagnostics, elpd, population, more = fit_measure_models(
-            chosen, log.frame, columns, [s.model_id for s in specs], run, seed=seed, requested=forms, gate=gate,
-            refits=refits)
-        notes, compare = notes + more, merge_elpd(compare, elpd)
+               "progress": shown(progress) == "bar", "gate": gate, "refits": refits, "loo": loo,
+               "forms": forms, "which": hierarchical_models, "seed": seed, "progress_option": progress}
+        posteriors, diagnostics, population, compare, more = _hierarchical(chosen, log, table, specs, selection,
+                                                                           compare, run)
+        notes += more
     settings = {"models": [s.model_id for s in specs], "measure": chosen.name, "locked": locked,
                 "regressors": list(chosen.columns), "fixed": dict(fixed or {}), "baseline": list(chosen.baseline),
-                "trial_spline_df": TRIAL_SPLINE_DF, "log_transform": chosen.log_transform,
-                "block_start": block_start, "bootstrap": bootstrap, "bayes": bayes, "draws": draws,
-                "chains": chains, "tune": tune, "parameterisation": forms, "gate": gate.settings(),
-                "refits": refits, "seed": seed, "n_jobs": n_jobs}
+                "trial_spline_df": TRIAL_SPLINE_DF, "log_transform": chosen.log_transform, "block_start": block_start,
+                "bootstrap": bootstrap, "bayes": bayes, "draws": draws, "chains": chains, "tune": tune,
+                "parameterisation": forms, "gate": gate.settings(), "refits": refits,
+                "hierarchical_models": hierarchical_models, "loo": loo, "seed": seed, "n_jobs": n_jobs}
     return RTResult(task=task, specs=tuple(specs), settings=settings, notes=tuple(notes), measure=chosen.name,
                     fits=fits_table, compare=compare, selection=selection, blocks=blocks, diagnostics=diagnostics,
                     population=population, regressors=table, posteriors=posteriors)
+
+
+def _hierarchical(chosen: Measure, log: ValidatedLog, table: pd.DataFrame, specs: Sequence[ModelSpec],
+                  selection: pd.DataFrame, compare: pd.DataFrame, run: Mapping[str, object]
+                  ) -> tuple[dict, pd.DataFrame, pd.DataFrame, pd.DataFrame, list[str]]:
+    """Return (posteriors, diagnostics, population, compare, notes) of the hierarchical models in play.
+
+    ``run``: draws, chains, tune, cores, progress (the sampler's own bar),
+    gate, refits, loo, forms, which ("in_play" or "all"), seed and
+    progress_option (the step's ``progress``).
+    """
+    columns = {c: table[c].to_numpy() for c in (*chosen.columns, "leak", "alpha", "params_from")}
+    ids = [s.model_id for s in specs]
+    sampled, why = in_play(selection, ids) if run["which"] == "in_play" else (ids, "all requested")
+    notes = [f"hierarchical models sampled: {', '.join([*sampled, BASELINE_MODEL])} ({why}; "
+             "hierarchical_models='all' samples every learner)"]
+    sampler = {k: run[k] for k in ("draws", "chains", "tune", "cores", "progress")}
+    posteriors, diagnostics, elpd, population, more = fit_measure_models(
+        chosen, log.frame, columns, ids, sampler, seed=run["seed"], requested=run["forms"], gate=run["gate"],
+        refits=run["refits"], progress=run["progress_option"], sampled=sampled, loo=run["loo"])
+    return posteriors, diagnostics, population, merge_elpd(compare, elpd), notes + more
 
 
 def _compared(fits: pd.DataFrame, block_rows: pd.DataFrame, chosen: Measure, specs: Sequence[ModelSpec],
               seed: int, bootstrap: int, notes: list[str]
               ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, list[str]]:
     """Return (selection, compare, blocks, notes) of the per-participant path, look-alike models compared once."""
-    merge = lookalikes(specs)
+    merge = same_evidence(fits, lookalikes(specs))
     selection = rfx_selection(fits, seed, merge)
     blocks = rank_blocks(block_rows, chosen, seed, merge)
     notes = (notes + _leak_notes(fits, bootstrap) + verdict_words(selection) + bic_words(fits)
@@ -258,15 +280,18 @@ def _learner_fits(log: ValidatedLog, task: object, specs: Sequence[ModelSpec], f
     return (fitted if fits is None else pd.concat([fits, fitted], ignore_index=True)), [note]
 
 
-def _per_participant(log: ValidatedLog, chosen: Measure, path: Path, n_jobs: int
+def _per_participant(log: ValidatedLog, chosen: Measure, path: Path, n_jobs: int, progress: bool | None
                      ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """Return (regressors, fits, block rows): participants in batches of whole participants on the workers."""
     edges = [r.start for r in participant_spans(log.frame).values()] + [len(log.frame)]
     workers = job_count(n_jobs)
-    jobs = (delayed(participant_path)(_rows_of(log, chosen, edges[a], edges[b]), path)
-            for a, b in batches(np.diff(edges), workers, _BATCH_TRIALS))
-    with workers_stopped(n_jobs):
-        done = Parallel(n_jobs=workers)(jobs)
+    ranges = batches(np.diff(edges), workers, _BATCH_TRIALS)
+    jobs = (delayed(participant_path)(_rows_of(log, chosen, edges[a], edges[b]), path) for a, b in ranges)
+    done = []
+    with workers_stopped(n_jobs), stage("rt", "participants fitted", len(edges) - 1, progress) as bar:
+        for (a, b), one in zip(ranges, Parallel(n_jobs=workers, return_as="generator")(jobs)):
+            done.append(one)
+            bar.advance(b - a)
     return (stack_tables([t for t, _, _ in done]), pd.DataFrame([row for _, f, _ in done for row in f]),
             pd.DataFrame([row for _, _, b in done for row in b]))
 

@@ -18,10 +18,10 @@ FALSE_POSITIVE_LEVEL = 0.05
 interval (the conventional 5% level; common practice)."""
 NOT_CALLED = "none"
 """The ``called`` label of a dataset in which the RT analysis calls no learner."""
-POWER_COLUMNS = ["trials", "generating", "called", "counts_as", "n_called", "n_datasets", "share", "ci_low",
-                 "ci_high"]
+POWER_COLUMNS = ["trials", "generating", "called", "counts_as", "n_called", "n_datasets", "share", "ci95_low",
+                 "ci95_high"]
 """Columns of :func:`power_table` (``rt_power.csv``)."""
-RATE_COLUMNS = ["trials", "generating", "rate", "n_called", "n_datasets", "share", "ci_low", "ci_high", "target",
+RATE_COLUMNS = ["trials", "generating", "rate", "n_called", "n_datasets", "share", "ci95_low", "ci95_high", "target",
                 "shown", "n_datasets_needed"]
 """Columns of :func:`rate_table` (``rt_rates.csv``)."""
 
@@ -49,7 +49,7 @@ def power_table(called: Sequence[dict[str, object]], counts: Sequence[int], labe
     table = frame.groupby(keys).size().reindex(grid, fill_value=0).rename("n_called").reset_index()
     table["n_datasets"] = table.groupby(["trials", "generating"])["n_called"].transform("sum")
     table["share"] = table["n_called"] / table["n_datasets"].where(table["n_datasets"] > 0)
-    table["ci_low"], table["ci_high"] = clopper_pearson(table["n_called"], table["n_datasets"])
+    table["ci95_low"], table["ci95_high"] = clopper_pearson(table["n_called"], table["n_datasets"])
     null = table["generating"].isin(NULLS)
     table["counts_as"] = np.select(
         [table["called"] == NOT_CALLED, null, table["called"] == table["generating"]],
@@ -83,10 +83,10 @@ def rate_table(power: pd.DataFrame) -> pd.DataFrame:
         .agg(n_called=("n_called", "sum"), n_datasets=("n_datasets", "first")).reset_index() \
         .assign(rate="false positive", target=FALSE_POSITIVE_LEVEL)
     fp["share"] = fp["n_called"] / fp["n_datasets"].where(fp["n_datasets"] > 0)
-    fp["ci_low"], fp["ci_high"] = clopper_pearson(fp["n_called"], fp["n_datasets"])
+    fp["ci95_low"], fp["ci95_high"] = clopper_pearson(fp["n_called"], fp["n_datasets"])
     table = pd.concat([power_rows, fp], ignore_index=True)
     is_power = (table["rate"] == "power").to_numpy()
-    table["shown"] = np.where(is_power, table["ci_low"] >= TARGET_POWER, table["ci_high"] <= FALSE_POSITIVE_LEVEL)
+    table["shown"] = np.where(is_power, table["ci95_low"] >= TARGET_POWER, table["ci95_high"] <= FALSE_POSITIVE_LEVEL)
     needed = [trials_to_show(s, TARGET_POWER) if p else trials_to_show(1.0 - s, 1.0 - FALSE_POSITIVE_LEVEL)
               for s, p in zip(table["share"], is_power)]
     table["n_datasets_needed"] = pd.array(needed, dtype="Int64")
@@ -154,7 +154,7 @@ def _power_from(rates: pd.DataFrame) -> str:
 def _rates_words(part: pd.DataFrame) -> str:
     """Return 'power count-1 95% (CI 75%-100%), ...; false positives practice-only 5% (...)' of one trial count."""
     def words(rows: pd.DataFrame) -> str:
-        return ", ".join(f"{r.generating} {r.share:.0%} ({CI_LEVEL:.0%} CI {r.ci_low:.0%}-{r.ci_high:.0%})"
+        return ", ".join(f"{r.generating} {r.share:.0%} ({CI_LEVEL:.0%} CI {r.ci95_low:.0%}-{r.ci95_high:.0%})"
                          for r in rows.itertuples())
 
     return (f"power {words(part[part['rate'] == 'power'])}; "

@@ -9,7 +9,6 @@ with ``out`` it writes them through :func:`foretell.outputs.write`.
 from __future__ import annotations
 
 import contextlib
-import sys
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -18,12 +17,13 @@ from pathlib import Path
 from typing import TYPE_CHECKING, ClassVar
 
 import pandas as pd
-from tqdm import tqdm
+
 
 from ..folders import STEP_FOLDERS, ResultFolder, as_recovery, fingerprints
 from ..inputs import as_log, as_task
 from ..logs import ValidatedLog, log_summary, unscorable
 from ..models import default_warmup
+from ..progress import stage
 from ..results import Result, prefixed
 from ..validation import check_count, check_n_jobs, check_option, check_seed
 
@@ -174,11 +174,14 @@ class _Run:
     chains: int
     tune: int
     refits: int | None
+    loo: bool
     trials: str
     provisional: bool
     recovery: object
     epochs: object = None
     locked: str | None = None
+    progress: bool | None = None
+    command: str | None = None
 
     def settings(self, done: Mapping[str, Result]) -> dict[str, object]:
         """Return the analysis's full option set, with each step's own under ``steps``."""
@@ -187,8 +190,8 @@ class _Run:
         return {"task": self.task.name, "models": self.models, "rt_models": self.rt_models,
                 "free": list(self.free), "skip": list(self.skip), "seed": self.seed, "n_jobs": self.n_jobs,
                 "bayes": self.bayes, "draws": self.draws, "chains": self.chains, "tune": self.tune,
-                "refits": self.refits, "trials": self.trials, "provisional": self.provisional,
-                "recovery": described,
+                "refits": self.refits, "loo": self.loo, "trials": self.trials, "provisional": self.provisional,
+                "recovery": described, "command": self.command,
                 "steps": {folder: dict(result.settings) for folder, result in done.items()}}
 
 
@@ -205,7 +208,7 @@ def _fit(run: _Run, done: Mapping[str, Result]) -> Result | str:
     from .guesses import fit
 
     return fit(run.log, run.task, models=run.models, free=run.free, seed=run.seed, n_jobs=run.n_jobs,
-               trials=run.trials, progress=False)
+               trials=run.trials, progress=run.progress)
 
 
 def _rt(run: _Run, done: Mapping[str, Result]) -> Result | str:
@@ -217,7 +220,7 @@ def _rt(run: _Run, done: Mapping[str, Result]) -> Result | str:
     models = run.rt_models or (fitted.model_ids if fitted is not None else run.models)
     return analyze_rt(run.log, run.task, models=models, fit=fitted, bayes=run.bayes, draws=run.draws,
                       chains=run.chains, tune=run.tune, seed=run.seed, n_jobs=run.n_jobs, refits=run.refits,
-                      progress=False)
+                      loo=run.loo, progress=run.progress)
 
 
 def _groups(run: _Run, done: Mapping[str, Result]) -> Result | str:
@@ -227,14 +230,14 @@ def _groups(run: _Run, done: Mapping[str, Result]) -> Result | str:
     from .groups import compare_groups
 
     return compare_groups(run.log, run.task, fit=done.get("fit"), draws=run.draws, chains=run.chains,
-                          tune=run.tune, seed=run.seed, bayes=run.bayes, n_jobs=run.n_jobs, progress=False)
+                          tune=run.tune, seed=run.seed, bayes=run.bayes, n_jobs=run.n_jobs, progress=run.progress)
 
 
 def _events(run: _Run, done: Mapping[str, Result]) -> Result:
     from .events import export_events
 
     return export_events(run.log, run.task, fit=done.get("fit"), models=run.models,
-                         n_jobs=run.n_jobs, progress=False)
+                         n_jobs=run.n_jobs, progress=run.progress)
 
 
 def _eeg(run: _Run, done: Mapping[str, Result]) -> Result | str:
@@ -243,7 +246,7 @@ def _eeg(run: _Run, done: Mapping[str, Result]) -> Result | str:
     from .eeg import analyze_eeg
 
     return analyze_eeg(run.log, run.task, epochs=run.epochs, fit=done.get("fit"), models=run.models,
-                       locked=run.locked, seed=run.seed, n_jobs=run.n_jobs, progress=False)
+                       locked=run.locked, seed=run.seed, n_jobs=run.n_jobs, progress=run.progress)
 
 
 def _recovery(run: _Run, done: Mapping[str, Result]) -> Result:
@@ -260,7 +263,7 @@ def analyze(log: object, task: object, *, out: str | Path | None = None, models:
             rt_models: Sequence[str] | None = None, free: Iterable[str] = (), skip: Iterable[str] = (),
             recovery: object = None, seed: object = 0, n_jobs: int = 1, progress: bool | None = None,
             bayes: bool = True, draws: int = 1000, chains: int = 4, tune: int = 1000, refits: int | None = None,
-            trials: str = "best", epochs: object = None, locked: str | None = None, force: bool = False, inputs: Sequence[str | Path] = (),
+            loo: bool = False, trials: str = "best", epochs: object = None, locked: str | None = None, force: bool = False, inputs: Sequence[str | Path] = (),
             manifest: Mapping[str, object] | None = None, provisional: bool = False) -> AnalysisResult:
     """Return (and with ``out``, write) the whole analysis of a study.
 
@@ -290,14 +293,17 @@ def analyze(log: object, task: object, *, out: str | Path | None = None, models:
     n_jobs : int, default 1
         Parallel jobs of every step (-1: all cores).
     progress : bool, optional
-        Show a bar per step on stderr (default: when stderr is a terminal).
+        Steps done, and inside each step participants fitted and models sampled, on stderr
+        (:func:`foretell.progress.shown`: True a bar on a terminal and plain lines otherwise;
+        None only on a terminal).
     bayes : bool, default True
         Fit the hierarchical Bayesian models of the RT and group steps
         (without: summed BIC and permutation tests only).
     draws, chains, tune : int
         Posterior draws per chain, chains, tuning steps of those models.
-    refits : int, optional
-        Exact leave-one-out refits per RT model (default of :func:`foretell.analyze_rt`).
+    refits, loo : int, bool; optional, default False
+        Compare the RT models by PSIS-LOO (``loo``), with at most ``refits`` exact leave-one-out refits
+        per model (default of :func:`foretell.analyze_rt`).
     trials : {"best", "all", "none"}
         Rows of ``fit/trials.csv``.
     epochs : str or pathlib.Path, optional
@@ -335,8 +341,9 @@ def analyze(log: object, task: object, *, out: str | Path | None = None, models:
                free=tuple(free), skip=tuple(sorted({str(check_option("skip", s, STEPS)) for s in skip})),
                seed=check_seed(seed), n_jobs=check_n_jobs(n_jobs), bayes=bool(bayes),
                draws=check_count("draws", draws), chains=check_count("chains", chains),
-               tune=check_count("tune", tune, 0), refits=refits, trials=str(check_option("trials", trials, TRIALS)),
-               provisional=bool(provisional), recovery=recovery, epochs=epochs, locked=locked)
+               tune=check_count("tune", tune, 0), refits=refits, loo=bool(loo), trials=str(check_option("trials", trials, TRIALS)),
+               provisional=bool(provisional), recovery=recovery, epochs=epochs, locked=locked, progress=progress,
+               command=(manifest or {}).get("command"))
     folders = ([recovery.path if isinstance(recovery, ResultFolder) else recovery]
                if isinstance(recovery, (str, Path, ResultFolder)) else [])
     held = contextlib.nullcontext()
@@ -345,7 +352,7 @@ def analyze(log: object, task: object, *, out: str | Path | None = None, models:
 
         held = reserve(out, inputs=[*inputs, *folders], force=force)
     with held:
-        result, timings = _run_steps(run, progress)
+        result, timings = _run_steps(run)
         if out is not None:
             from ..outputs import write
 
@@ -354,19 +361,18 @@ def analyze(log: object, task: object, *, out: str | Path | None = None, models:
     return result
 
 
-def _run_steps(run: _Run, progress: bool | None) -> tuple[AnalysisResult, dict[str, float]]:
+def _run_steps(run: _Run) -> tuple[AnalysisResult, dict[str, float]]:
     """Return the analysis of ``run`` (each step on the results before it) and the seconds each step took."""
     planned = [(folder, step) for folder, step in RUNNERS if folder not in run.skip
                and (folder != STEP_FOLDERS["recover"] or run.recovery is not None)]
     report = "report" not in run.skip
-    show = sys.stderr.isatty() if progress is None else bool(progress)
     started = time.perf_counter()
     timings: dict[str, float] = {}
     done: dict[str, Result] = {}
     notes: list[str] = []
-    with tqdm(total=len(planned) + report, desc="analysis", unit="step", disable=not show, file=sys.stderr) as bar:
+    with stage("analysis", "steps done", len(planned) + report, run.progress, eta=False, every=0) as bar:
         for folder, step in planned:
-            bar.set_postfix_str(folder)
+            bar.detail(folder)
             t0 = time.perf_counter()
             outcome = step(run, done)
             if isinstance(outcome, str):
@@ -375,15 +381,15 @@ def _run_steps(run: _Run, progress: bool | None) -> tuple[AnalysisResult, dict[s
                 done[folder] = outcome
                 notes += list(outcome.notes)
             timings[f"{folder}_s"] = round(time.perf_counter() - t0, 3)
-            bar.update()
+            bar.advance()
         fitted = done.get("fit")
         result = AnalysisResult(task=run.task, specs=fitted.specs if fitted is not None else (),
                                 settings=run.settings(done), notes=tuple(notes), steps=done)
         if report:  # the report and every figure, drawn once now: the result holds them
-            bar.set_postfix_str("report")
+            bar.detail("report")
             t0 = time.perf_counter()
             _ = result.report
             timings["report_s"] = round(time.perf_counter() - t0, 3)
-            bar.update()
+            bar.advance()
     timings["total_s"] = round(time.perf_counter() - started, 3)
     return result, timings
