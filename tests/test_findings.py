@@ -84,8 +84,8 @@ def test_a_changed_table_changes_its_line(tmp_path, tables):
                and "lower in 2 of 3 blocks, 2 at Holm p < 0.05" in line for line in changed)
     tables["groups/group_joint"].loc[0, "perm_p_holm"] = 0.07
     quiet = [f.text for f in findings(_folder(tmp_path / "quiet", tables)) if f.anchor == "curves"]
-    assert quiet == ["Groups: no difference shown (Holm p ≥ 0.05) in optimal-guess rate, context depth; "
-                     "not shown is not shown absent."]
+    assert quiet == ["Groups: no difference shown (Holm p ≥ 0.05) in optimal-guess rate, context depth "
+                     "(a difference not shown is not shown to be absent)."]
 
 
 def test_no_learner_is_called_when_the_selection_calls_none(tmp_path, tables):

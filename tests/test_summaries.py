@@ -94,10 +94,10 @@ def test_summary_names_the_criterion_the_blocks_and_the_lookalikes():
     assert "count-task left out: identical to count-0 on this task" in text
     assert any(line.startswith("group g (3 participants): clear winner: count-0") for line in lines)
     start = lines.index("  by block:")
-    by_block = lines[start + 1:start + 3]
-    assert by_block[0] == ("    block 1: ahead, not clear: count-0 (protected exceedance 0.90 < 0.95; "
-                           "omnibus risk 0.05)")
-    assert by_block[1] == "    block 2: no model stands out (omnibus risk 0.70 > 0.50)"
+    by_block = lines[start + 1:start + 4]
+    assert by_block[0] == "    block 1: ahead, not clear: count-0 (protected exceedance 0.90 < 0.95, ahead from 0.50 with 3"
+    assert by_block[1] == "      models; omnibus risk 0.05)"  # the bar of "ahead" is said, and the line wraps under 100
+    assert by_block[2] == "    block 2: no model stands out (omnibus risk 0.70 > 0.50)"
     assert not any("best" in line for line in by_block)  # no counts of per-participant winners here
     own = " ".join(lines[next(i for i, line in enumerate(lines) if "own best model" in line):])
     assert "count-0 2, count-1 1" in own and "1 of 3 participants" in own
@@ -120,7 +120,7 @@ def test_block_lines_word_a_leader_by_the_same_rule_as_the_whole_session():
         assert parts[f"block {block}"].startswith(words), parts
     status, _, whole = verdict(session, "model")
     assert status == "ahead" and whole.startswith("ahead, not clear: count-0")
-    assert "(protected exceedance 0.54 < 0.95; omnibus risk 0.01)" in parts["block 1"]
+    assert parts["block 1"].endswith("(protected exceedance 0.54 < 0.95, ahead from 0.50 with 10")  # wrapped
     assert ">= 0.95" in parts["block 2"]
 
 

@@ -123,7 +123,7 @@ def _groups(source: Source) -> list[Finding]:
             f"{_difference(row, 'high', unit=False)}), Holm p {p_words(p)}{n_perm}{blocks}.", "curves"))
     if quiet:
         out.append(Finding(f"Groups: no difference shown (Holm p ≥ {number(HOLM_ALPHA, '.2f')}) in "
-                           f"{', '.join(dict.fromkeys(quiet))}; not shown is not shown absent.", "curves"))
+                           f"{', '.join(dict.fromkeys(quiet))} (a difference not shown is not shown to be absent).", "curves"))
     return out + _uncalled(source.table("groups/group_diagnostics"))
 
 

@@ -188,8 +188,10 @@ def verdict(table: pd.DataFrame, label: str) -> tuple[str, str | None, str]:
         return "level", None, (f"no {label} stands out (highest protected exceedance "
                                f"{_versus(pxp, '<', bar)} with {compared}; {risk})")
     status, side = ("clear", ">=") if pxp >= CLEAR_PXP else ("ahead", "<")
+    compared = plural(k, label, "families" if label == "family" else None)
+    ahead = "" if status == "clear" else f", ahead from {number(bar, '.2f')} with {compared}"
     return status, leader, (f"{_LEADER_WORDS[status]}: {leader} (protected exceedance "
-                            f"{_versus(pxp, side, CLEAR_PXP)}; {risk})")
+                            f"{_versus(pxp, side, CLEAR_PXP)}{ahead}; {risk})")
 
 
 def _block_lines(table: pd.DataFrame, group: str, label: str) -> list[str]:

@@ -223,8 +223,17 @@ def cmd_rt(args: argparse.Namespace) -> int:
                           baseline=args.baseline, bootstrap=args.bootstrap)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)], reads=reads)
+    print(_step_findings(result))
     print(ranking_text(result.compare))
     return 0
+
+
+def _step_findings(result) -> str:
+    """Return the findings of one step's result (:func:`foretell.findings.findings_text`)."""
+    from ..findings import findings_text
+    from ..steps.whole import AnalysisResult
+
+    return findings_text(AnalysisResult.of(result))
 
 
 def cmd_groups(args: argparse.Namespace) -> int:
@@ -246,7 +255,7 @@ def cmd_groups(args: argparse.Namespace) -> int:
                               n_jobs=args.jobs, progress=PROGRESS)
 
     result = _run(args, step, task=task, log=log, inputs=[*log.sources, *_task_inputs(task), *profile_inputs(args)], reads=reads)
-    print(result.texts().get("summary.txt", ""), end="")
+    print(_step_findings(result))
     return 0
 
 

@@ -95,6 +95,23 @@ class AnalysisResult(Result):
     step: ClassVar[str] = "analyze"
     steps: Mapping[str, Result] = field(default_factory=dict)
 
+    @classmethod
+    def of(cls, result: Result) -> AnalysisResult:
+        """Return an analysis that holds one step's result only (e.g. to read its findings).
+
+        Parameters
+        ----------
+        result : Result
+            A step's result; it goes under the step's folder (:data:`STEP_FOLDERS`).
+
+        Returns
+        -------
+        AnalysisResult
+        """
+        folder = STEP_FOLDERS.get(result.step, result.step)
+        return cls(task=result.task, specs=result.specs, settings={"steps": {folder: dict(result.settings)}},
+                   notes=(), steps={folder: result})
+
     @property
     def fit(self) -> Result | None:
         """Return the fits and comparisons (:class:`foretell.steps.guesses.FitResult`), if they ran."""
