@@ -94,7 +94,7 @@ def test_every_section_is_present_with_its_figures(study, built):
     assert 'id="demo"' in page and "Simulated demo data" in page
     assert set(built.figures) == {"figures/winners.png", "figures/parameters.png", "figures/source_tree.png",
                                   "figures/response_tree_rested.png", "figures/response_tree_tired.png",
-                                  "figures/rt_slopes.png"}
+                                  "figures/rt_slopes.png", "figures/rt_binned.png"}
     steps = {name for name in ResultFolder(study).files if "/figures/" in name}
     assert "recovery/figures/confusion_40.png" in steps and any(n.startswith("groups/figures/curve_") for n in steps)
     shown = {**built.figures, **{name: (study / name).read_bytes() for name in steps

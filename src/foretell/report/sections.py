@@ -6,7 +6,8 @@ import pandas as pd
 
 from foretell.findings import findings, permutation_count
 from foretell.labels import ALL
-from foretell.plots.rt import slopes_figure
+from foretell.measure import BASELINE_MODEL
+from foretell.plots.rt import binned_figure, slopes_figure
 from foretell.report.layout import (SELECTION_COLUMNS, Figures, Section, Source, Table, absent, cell,
                                     diagnostics_table, lines, provisional_line, step_settings, table)
 from foretell.summaries import HOLM_ALPHA, METRIC_WORDS, contrast_words
@@ -263,7 +264,26 @@ def rt_section(source: Source, figures: Figures, provisional: bool) -> Section:
                   f"Each participant's slope of the reaction time on each learner's {regressor}, with its 95% "
                   "interval, by group (per-participant fits; intervals not corrected for the number of "
                   "participants)."),)
+        shown += _binned(source, figures, regressor)
     return Section("rt", heading, (*after, *paragraphs), items, shown, tuple(tables))
+
+
+def _binned(source: Source, figures: object, regressor: str) -> tuple[tuple[object, str], ...]:
+    """Return the binned measure against the regressor of the learner called for everyone (else the leader)."""
+    trials, selection = source.table("rt/regressors"), source.table("rt/rt_selection")
+    if trials is None or selection is None or "used" not in trials.columns or "rt" not in trials.columns:
+        return ()
+    learners = selection[(selection["group"].astype(str) == ALL) & (selection["model"] != BASELINE_MODEL)]
+    learners = learners.dropna(subset=["protected_exceedance"])
+    if learners.empty:
+        return ()
+    top = learners.sort_values("protected_exceedance", ascending=False, kind="stable").iloc[0]
+    called = bool(pd.Series([top["called"]]).astype("boolean").fillna(False).iloc[0])
+    which = "the learner called for everyone" if called else "the leader for everyone (not called)"
+    return ((figures.draw("rt_binned", binned_figure(trials, str(top["model"]), regressor=regressor)),
+             f"Reaction time against the {regressor} of {top['model']}, {which}: raw geometric means in quantile "
+             "bins of the trials the fits used, per group, with 95% intervals over participants (time-on-task "
+             "terms not removed)."),)
 
 
 def events_section(source: Source) -> Section:

@@ -203,6 +203,7 @@ def analyze_rt(log: object, task: object, *, fit: object = None, models: Sequenc
     fits, more = _learner_fits(log, task, specs, fitted.fits if fitted is not None else None, fixed, seed, n_jobs)
     path = Path(task, tuple(specs), fixed, fits, seed, bootstrap)
     table, fits_table, block_rows = _per_participant(log, chosen, path, n_jobs, progress)
+    table = _with_measure(table, log, chosen)
     selection, compare, blocks, more = _compared(fits_table, block_rows, chosen, specs, seed, bootstrap, more)
     notes += _drop_notes(chosen, log.frame) + more
     diagnostics, population, posteriors = (pd.DataFrame(columns=DIAGNOSTIC_COLUMNS),
@@ -294,6 +295,18 @@ def _per_participant(log: ValidatedLog, chosen: Measure, path: Path, n_jobs: int
             bar.advance(b - a)
     return (stack_tables([t for t, _, _ in done]), pd.DataFrame([row for _, f, _ in done for row in f]),
             pd.DataFrame([row for _, _, b in done for row in b]))
+
+
+def _with_measure(table: pd.DataFrame, log: ValidatedLog, chosen: Measure) -> pd.DataFrame:
+    """Return the regressors table with the measure's raw value of each trial (column named as the measure).
+
+    ``used``: whether the trial has no reason to be left out of the fits (screened out, warm-up, and, in
+    reaction designs, an error, after an error or at a block's start); a model whose regressor is undefined
+    on a trial also leaves it out.
+    """
+    keys = ["participant", "session", "block", "trial"]
+    values = log.frame[keys].assign(**{chosen.name: chosen.values, "used": chosen.reason == 0})
+    return table.merge(values, on=keys, how="left", validate="many_to_one", sort=False)
 
 
 def _values(log: ValidatedLog, measure: str | pd.Series | np.ndarray) -> tuple[str, np.ndarray]:
