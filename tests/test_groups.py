@@ -323,7 +323,7 @@ def test_the_curve_figure_says_its_model_bands_are_unadjusted():
     table = pd.DataFrame({"group": ["A", "A"], "session": "1", "block": ["1", "2"], "metric": "accuracy",
                           "participant_mean": [0.5, 0.6], "mean": [0.52, 0.58], "hdi95_low": [0.4, 0.5],
                           "hdi95_high": [0.6, 0.7]})
-    legend = [t.get_text() for t in curve_figure(table, METRICS["accuracy"]).axes[0].get_legend().get_texts()]
+    legend = [t.get_text() for t in curve_figure(table, METRICS["accuracy"]).legends[0].get_texts()]
     assert legend == ["A: mean of participants", "A: model, 95% HDI per block (unadjusted)"]
 
 

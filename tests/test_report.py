@@ -309,9 +309,10 @@ def test_curves_show_each_participant_and_an_interval_even_without_a_model():
     table = curves.groupby(["group", "session", "block", "metric"], as_index=False)["value"].mean().rename(
         columns={"value": "participant_mean"}).assign(mean=float("nan"), hdi95_low=float("nan"),
                                                       hdi95_high=float("nan"))
-    ax = curve_figure(table, METRICS["median_rt"], curves=curves, seed=1).axes[0]
+    fig = curve_figure(table, METRICS["median_rt"], curves=curves, seed=1)
+    ax = fig.axes[0]
     assert len([line for line in ax.lines if line.get_linewidth() < 1]) == 4  # one thin line per participant
-    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]  # below the axes, never squeezing them
     assert legend == ["A: mean of participants", "A: 95% bootstrap interval over participants"]
     band = ax.collections[0].get_paths()[0].vertices[:, 1]
     low, high = band.min(), band.max()

@@ -90,7 +90,7 @@ def curve_figure(group_curves: pd.DataFrame, metric: CurveMetric, *, curves: pd.
     rows = group_curves[group_curves["metric"] == metric.name]
     units = _unit_order(rows)
     index = {u: i for i, u in enumerate(units)}
-    fig, (ax,) = new_figure(width=max(4.8, 0.45 * len(units) + 3.0), height=3.8)
+    fig, (ax,) = new_figure(width=max(6.4, 0.45 * len(units) + 3.0), height=5.0)
     mine = None if curves is None else curves[curves["metric"] == metric.name]
     for i, (group, part) in enumerate(rows.groupby("group", sort=True)):
         x = np.array([index[(s, b)] for s, b in zip(part["session"], part["block"])])
@@ -124,7 +124,7 @@ def curve_figure(group_curves: pd.DataFrame, metric: CurveMetric, *, curves: pd.
         plain_log_ticks(ax.yaxis, *ax.get_ylim())
     ax.set_ylabel(f"{METRIC_WORDS.get(metric.name, metric.title)} ({unit})")
     ax.set_title(f"{metric.title} by block")
-    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    fig.legend(*ax.get_legend_handles_labels(), fontsize=8, loc="outside lower center", ncols=1, frameon=False)
     return fig
 
 
