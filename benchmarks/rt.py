@@ -133,7 +133,7 @@ def few_blocks() -> None:
     for refits in (0, 10):
         start = time.perf_counter()
         result = analyze_rt(log, task, models=["count-0", "count-1"], draws=1000, tune=1000, chains=4,
-                            seed=0, n_jobs=2, refits=refits, progress=False)
+                            seed=0, n_jobs=2, refits=refits, loo=True, progress=False)
         times[refits] = time.perf_counter() - start
         diag = result.diagnostics.set_index("model")
         top = result.compare.iloc[0]
