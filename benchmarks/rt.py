@@ -22,6 +22,8 @@ task, RTs from the simulator's law (driven by a depth-1 learner's entropy).
    per learner, the share of participants whose 95% slope interval excludes 0
    (nominal 5%), and how many datasets call a learner. Then RTs that do follow
    a learner (RTLaw, 0.25 log units per bit): how often the generator is called.
+5. A reaction design, the leak chosen on held-out blocks: white-noise RTs and RTs driven by a leak-free
+   depth-1 learner's surprise over a practice curve; the chosen leak, the interval level and power, the call.
 
 Run once, by hand, on a quiet machine: PYTHONPATH=src python benchmarks/rt.py [--sections calibration]
 """
@@ -44,7 +46,7 @@ from foretell.regressors import regressors
 from foretell.simulate import ParticipantSpec, RTLaw, simulate_participants
 from foretell.stats.regression import newey_west_lags
 from foretell.steps.measures import analyze_rt
-from foretell.tasks import load_task
+from foretell.tasks import Task, load_task
 
 TARGET_S = 6.0
 TARGET_BAYES_S = 240.0
@@ -199,13 +201,50 @@ def calibration() -> None:
               f"({', '.join(map(str, calls))})")
 
 
+def reaction_calibration() -> None:
+    """Section 5: a reaction design whose leak is chosen on held-out blocks: white-noise RTs, and RTs driven by
+    a leak-free depth-1 learner's surprise on top of practice; the leak chosen, the interval, the call."""
+    task = Task.from_dict({"name": "chain", "symbols": ["a", "b", "c"], "response": "reaction",
+                           "contexts": [{"past": [s], "next": {t: (0.8 if t == s else 0.1) for t in "abc"}}
+                                        for s in "abc"]})
+    print(f"\nreaction design (leak chosen on held-out blocks): {NULL_DATASETS} datasets x 12 participants x 400 "
+          f"trials per kind, models count-0, count-1, count-1-leak; load {os.getloadavg()[0]:.2f}")
+    for kind in ("white", "count-1"):
+        start, rows, calls = time.perf_counter(), [], []
+        for seed in range(NULL_DATASETS):
+            rng = np.random.default_rng(seed + 2000)
+            parts = []
+            for i in range(12):
+                x = task.sample(400, seed=rng)
+                response = np.where(rng.random(400) < 0.04, (x + 1) % 3, x)
+                parts.append(pd.DataFrame({"participant": f"s{i + 1:02d}", "block": np.arange(400) // 100 + 1,
+                                           "trial": np.arange(1, 401), "stimulus": np.array(task.symbols)[x],
+                                           "response": np.array(task.symbols)[response], "rt": 0.4}))
+            frame = pd.concat(parts, ignore_index=True)
+            drive = 0.0
+            if kind == "count-1":
+                drive = 0.08 * np.nan_to_num(regressors(validate_log(frame, task), task, ["count-1"])["surprise"])
+            frame["rt"] = np.exp(math.log(0.5) + drive - 0.1 * np.log(frame["trial"]) + 0.2 * rng.normal(size=len(frame)))
+            result = analyze_rt(validate_log(frame, task), task, models=["count-0", "count-1", "count-1-leak"],
+                                bayes=False, seed=seed)
+            rows.append(result.fits[result.fits["model"] != "none"])
+            calls.append(result.verdict())
+        fits = pd.concat(rows)
+        out = ((fits["slope_low"] > 0) | (fits["slope_high"] < 0)).groupby(fits["model"], sort=False).mean()
+        leak = fits.loc[fits["model"] == "count-1-leak", "leak"]
+        print(f"  {kind:>8} RTs: interval excludes 0: " + ", ".join(f"{m} {r:.3f}" for m, r in out.items())
+              + f"; count-1-leak's chosen leak median {leak.median():.2f} (share >= 0.5: {(leak >= 0.5).mean():.2f}); "
+              f"called: {', '.join(map(str, calls))}; {time.perf_counter() - start:.0f} s")
+
+
 if __name__ == "__main__":
     import argparse
 
     parser = argparse.ArgumentParser(description="Speed and null calibration of the RT analyses.")
-    parser.add_argument("--sections", default="speed,blocks,calibration",
-                        help="comma-separated sections to run: speed (1-2), blocks (3), calibration (4)")
+    parser.add_argument("--sections", default="speed,blocks,calibration,reaction",
+                        help="comma-separated sections to run: speed (1-2), blocks (3), calibration (4), reaction (5)")
     chosen = set(parser.parse_args().sections.split(","))
-    for name, section in (("speed", main), ("blocks", few_blocks), ("calibration", calibration)):
+    for name, section in (("speed", main), ("blocks", few_blocks), ("calibration", calibration),
+                          ("reaction", reaction_calibration)):
         if name in chosen:
             section()
