@@ -362,7 +362,7 @@ def test_pointwise_loglik_equals_pymc_own(kind):
     with model:
         prior = pm.sample_prior_predictive(draws=40, random_seed=2).prior
     idata = az.InferenceData(posterior=prior.drop_vars("y", errors="ignore"))
-    with model:  # reference: PyMC's own pointwise log-likelihood of the same draws
+    with model:  # reference: PyMC's own pointwise log-likelihood of the same draws (PyMC; Abril-Pla et al., 2023)
         expected = pm.compute_log_likelihood(idata, progressbar=False, extend_inferencedata=False)["y"].to_numpy()
     np.testing.assert_allclose(pointwise_loglik(data, idata), expected, rtol=1e-9, atol=1e-9)
 

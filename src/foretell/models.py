@@ -285,23 +285,12 @@ def lookalikes(specs: Sequence[ModelSpec], predictions: pd.DataFrame | None = No
         For predictions without p_<symbol> columns or trial keys.
     """
     ids = [s.model_id for s in specs]
-    parent = list(range(len(specs)))
-
-    def root(i: int) -> int:
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    def join(i: int, j: int) -> None:
-        a, b = root(i), root(j)
-        parent[max(a, b)] = min(a, b)
-
+    sets = Partition(ids)
     pairs = [(i, j) for i in range(len(specs)) for j in range(i + 1, len(specs))
              if specs[i].free == specs[j].free]
     for i, j in pairs:
         if specs[i].signature and specs[i].signature == specs[j].signature:
-            join(i, j)
+            sets.join(ids[i], ids[j])
     if predictions is not None and len(predictions):
         columns = sorted(c for c in predictions.columns if c.startswith("p_"))
         keys = [c for c in ("participant", "session", "block", "trial") if c in predictions.columns]
@@ -311,14 +300,47 @@ def lookalikes(specs: Sequence[ModelSpec], predictions: pd.DataFrame | None = No
                   for m, part in predictions.groupby("model", sort=False) if m in ids}
         for i, j in pairs:
             a, b = tables.get(ids[i]), tables.get(ids[j])
-            if root(i) == root(j) or a is None or b is None or not a.index.equals(b.index):
+            if sets.same(ids[i], ids[j]) or a is None or b is None or not a.index.equals(b.index):
                 continue
             if np.allclose(a.to_numpy(float), b.to_numpy(float), rtol=0.0, atol=tol, equal_nan=True):
-                join(i, j)
-    sets: dict[int, list[str]] = {}
-    for i, model in enumerate(ids):
-        sets.setdefault(root(i), []).append(model)
-    return [tuple(members) for _, members in sorted(sets.items()) if len(members) > 1]
+                sets.join(ids[i], ids[j])
+    return sets.sets()
+
+
+class Partition:
+    """Model ids joined into sets (union-find): each set is closed under every join made.
+
+    Parameters
+    ----------
+    ids : sequence of str
+        The models, in the order their sets list them (the first of a set is the one kept).
+    """
+
+    def __init__(self, ids: Sequence[str]) -> None:
+        self._order = {m: i for i, m in enumerate(dict.fromkeys(ids))}
+        self._parent = {m: m for m in self._order}
+
+    def _root(self, model: str) -> str:
+        while self._parent[model] != model:
+            self._parent[model] = self._parent[self._parent[model]]
+            model = self._parent[model]
+        return model
+
+    def join(self, a: str, b: str) -> None:
+        """Put ``a`` and ``b`` (and their sets) in one set."""
+        first, second = sorted((self._root(a), self._root(b)), key=self._order.__getitem__)
+        self._parent[second] = first
+
+    def same(self, a: str, b: str) -> bool:
+        """Return whether ``a`` and ``b`` are in one set."""
+        return self._root(a) == self._root(b)
+
+    def sets(self) -> list[tuple[str, ...]]:
+        """Return the sets of two or more models, each and all in the order of ``ids``."""
+        members: dict[str, list[str]] = {}
+        for model in self._order:
+            members.setdefault(self._root(model), []).append(model)
+        return [tuple(m) for m in members.values() if len(m) > 1]
 
 
 def lookalike_note(kept: str, others: Sequence[str]) -> str:

@@ -34,11 +34,7 @@ def split_rhat(chains: np.ndarray) -> np.ndarray:
     Gelman, A., Carlin, J. B., Stern, H. S., et al. (2013). Bayesian Data
     Analysis, 3rd ed., ch. 11.
     """
-    halves = _split(chains)
-    n = halves.shape[1]
-    w = halves.var(axis=1, ddof=1).mean(axis=0)
-    b_over_n = halves.mean(axis=1).var(axis=0, ddof=1)
-    var_plus = (n - 1) / n * w + b_over_n
+    w, var_plus = _variances(_split(chains))
     with np.errstate(divide="ignore", invalid="ignore"):
         rhat = np.sqrt(var_plus / w)
     return np.where(w > _CONSTANT, rhat, 1.0)
@@ -72,8 +68,7 @@ def effective_sample_size(chains: np.ndarray) -> np.ndarray:
     size = 1 << int(np.ceil(np.log2(2 * n)))
     spectrum = np.fft.rfft(centred, n=size, axis=1)
     acov = np.fft.irfft(spectrum * np.conj(spectrum), n=size, axis=1)[:, :n] / n  # (m, n, q)
-    w = halves.var(axis=1, ddof=1).mean(axis=0)
-    var_plus = (n - 1) / n * w + halves.mean(axis=1).var(axis=0, ddof=1)
+    w, var_plus = _variances(halves)
     ess = np.full(q, float(m * n))
     for j in np.flatnonzero(w > _CONSTANT):
         rho = 1.0 - (w[j] - acov[:, :, j].mean(axis=0)) / var_plus[j]
@@ -85,6 +80,13 @@ def effective_sample_size(chains: np.ndarray) -> np.ndarray:
         tau = -1.0 + 2.0 * pairs.sum()
         ess[j] = m * n / max(tau, 1.0 / np.log10(m * n))
     return ess
+
+
+def _variances(halves: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Return (W, var+) of split chains: the mean within-chain variance and (n - 1) / n W + B / n."""
+    n = halves.shape[1]
+    w = halves.var(axis=1, ddof=1).mean(axis=0)
+    return w, (n - 1) / n * w + halves.mean(axis=1).var(axis=0, ddof=1)
 
 
 def _split(chains: np.ndarray) -> np.ndarray:

@@ -12,6 +12,7 @@ from scipy.special import betainc
 from foretell.compare import selection, selection_blocks
 from foretell.labels import ALL
 from foretell.measure import BASELINE_MODEL, Measure
+from foretell.models import Partition
 from foretell.summaries import CLEAR_PXP, probability_words, verdict
 from foretell.text import plural
 from foretell.validation import child_int
@@ -139,31 +140,18 @@ def same_evidence(fits: pd.DataFrame, merge: Sequence[Sequence[str]]) -> list[tu
     list of tuple of str
     """
     order = list(dict.fromkeys(fits["model"].astype(str)))
-    owner = {m: m for m in order}
-
-    def root(m: str) -> str:
-        while owner[m] != m:
-            m = owner[m]
-        return m
-
-    def join(a: str, b: str) -> None:
-        ra, rb = sorted((root(a), root(b)), key=order.index)
-        owner[rb] = ra
-
+    sets = Partition(order)
     for members in merge:
-        present = [m for m in members if m in owner]
+        present = [m for m in members if m in order]
         for other in present[1:]:
-            join(present[0], other)
+            sets.join(present[0], other)
     bic = fits.pivot_table(index="participant", columns="model", values="bic", aggfunc="first", dropna=False)
     for i, a in enumerate(order):
         for b in order[i + 1:]:
-            if a in bic and b in bic and root(a) != root(b) and bic[a].notna().any() and np.allclose(
+            if a in bic and b in bic and not sets.same(a, b) and bic[a].notna().any() and np.allclose(
                     bic[a].to_numpy(float), bic[b].to_numpy(float), rtol=0.0, atol=1e-9, equal_nan=True):
-                join(a, b)
-    sets: dict[str, list[str]] = {}
-    for m in order:
-        sets.setdefault(root(m), []).append(m)
-    return [tuple(members) for members in sets.values() if len(members) > 1]
+                sets.join(a, b)
+    return sets.sets()
 
 
 def ranking_text(compare: pd.DataFrame) -> str:
