@@ -43,3 +43,11 @@ def test_the_console_ranking_shows_only_columns_with_numbers_and_never_rounds_on
     text = ranking_text(compare)
     assert "elpd_diff" not in text and "> 0.999" in text and "< 0.001" in text and "41.3" in text
     assert max(len(line) for line in text.splitlines()) < 100
+
+
+def test_no_usable_fits_give_no_merge_and_a_ranking_that_says_so():
+    # every participant with too few kept trials: the fits table has no bic column (a case the fuzz test found)
+    fits = pd.DataFrame({"participant": ["p01", "p01"], "model": ["count-0", "count-1"], "note": "too few"})
+    assert same_evidence(fits, [("count-0", "count-1")]) == [("count-0", "count-1")]
+    assert same_evidence(fits, []) == []
+    assert ranking_text(pd.DataFrame(columns=["model", "rank"])).startswith("no model ranking")

@@ -82,7 +82,8 @@ def findings_text(analysis: object, width: int = LINE_WIDTH) -> str:
     str
         "findings:" and one wrapped bullet per :func:`findings` line.
     """
-    return "\n".join(["findings:", *(wrapped(f"- {finding.text}", width) for finding in findings(analysis))])
+    lines = [wrapped(f"- {finding.text}", width) for finding in findings(analysis)]
+    return "\n".join(["findings:", *lines] if lines else ["findings: none the tables support (see the notes)"])
 
 
 def _models(source: Source) -> list[Finding]:

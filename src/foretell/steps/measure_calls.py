@@ -145,6 +145,8 @@ def same_evidence(fits: pd.DataFrame, merge: Sequence[Sequence[str]]) -> list[tu
         present = [m for m in members if m in order]
         for other in present[1:]:
             sets.join(present[0], other)
+    if "bic" not in fits.columns:  # no participant had enough trials for a fit
+        return sets.sets()
     bic = fits.pivot_table(index="participant", columns="model", values="bic", aggfunc="first", dropna=False)
     for i, a in enumerate(order):
         for b in order[i + 1:]:
@@ -164,6 +166,8 @@ def ranking_text(compare: pd.DataFrame) -> str:
     """
     shown = ["model", "rank", "protected_exceedance", "expected_freq", "d_bic_sum", "elpd_diff", "elpd_diff_se",
              "n_participants", "evidence"]
+    if compare.empty:
+        return "no model ranking: no participant had usable fits (see the notes)"
     table = compare[[c for c in shown if c in compare.columns and compare[c].notna().any()]].copy()
     for column in ("protected_exceedance", "expected_freq"):
         if column in table:
